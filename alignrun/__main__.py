@@ -1,0 +1,3 @@
+from alignrun.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,378 @@
+"""Experiment configuration: schema, defaults, TOML loading, `extends`, `--set` overrides, error messages.
+
+Every default lives in the section classes below. Loading is: read TOML -> follow `extends` (cycles
+refused) -> resolve relative paths against the file that set them -> merge -> apply `--set` -> validate.
+"""
+
+from __future__ import annotations
+
+import difflib
+import os
+import sys
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+
+from alignrun.errors import UserError
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+import tomli_w
+
+
+class Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", strict=True, validate_default=True)
+
+
+class BaseSection(Section):
+    """[base] the seq2seq model the adapters are trained on."""
+
+    model: str = Field(description="local folder or hub name of an encoder-decoder LM")
+    revision: str | None = Field(None, description="hub revision (branch, tag or commit)")
+    trust_remote_code: bool = Field(False, description="run model code shipped with the weights (code execution)")
+    device: Literal["auto", "cpu", "cuda"] = Field("auto", description="auto uses a GPU only when one is present")
+    threads: int = Field(0, ge=0, le=1024, description="CPU threads; 0 means all cores")
+    precision: Literal["fp32", "bf16"] = Field("fp32", description="compute precision (bf16 autocast on supporting CPUs)")
+
+
+class LoraSection(Section):
+    """[lora] low-rank adapters (Hu et al. 2021)."""
+
+    rank: int = Field(8, ge=1, le=1024)
+    alpha: float = Field(16.0, gt=0)
+    dropout: float = Field(0.0, ge=0, lt=1)
+    targets: str | list[str] = Field("auto", description='"auto" (query/value projections), "all-linear", or module names')
+
+
+class ReferenceSection(Section):
+    """[reference] the frozen model the KL penalty measures drift from."""
+
+    mode: Literal["adapters-off", "copy"] = Field(
+        "adapters-off", description="adapters-off shares the base weights; copy keeps a second frozen model (more memory)"
+    )
+
+
+class ScorerSection(Section):
+    """A text classifier that gives P(harmful) per text; used by [reward] and [evaluation.judge]."""
+
+    backend: Literal["hf", "sklearn", "callable"] = "hf"
+    source: str = Field(
+        description="hf: folder or hub name; sklearn: module:attr (or module:vectorizer,model) or a .joblib file; "
+        "callable: module:function"
+    )
+    revision: str | None = None
+    harmful_labels: list[str] = Field(default_factory=list, description="the classifier's own names of the harmful classes")
+    harmful_index: int | None = Field(None, ge=0, description="only for models without label names; needs a passing probe check")
+    combine: Literal["max", "noisy-or"] = Field("max", description="how several harmful labels combine: max p, or 1 - prod(1 - p)")
+    batch_size: int = Field(32, ge=1, le=4096)
+    max_length: int = Field(0, ge=0, description="truncation length in tokens; 0 uses the classifier's own maximum")
+
+    @model_validator(mode="after")
+    def _one_way_to_name_harm(self) -> ScorerSection:
+        if self.harmful_labels and self.harmful_index is not None:
+            raise ValueError("set either harmful_labels or harmful_index, not both")
+        return self
+
+
+class RewardSection(ScorerSection):
+    """[reward] the classifier reward and its explicit transform."""
+
+    transform: Literal["neg-harm", "logit-margin", "log-odds"] = Field(
+        "neg-harm", description="neg-harm: -p; logit-margin: benign minus harmful logit; log-odds: log((1-p)/p)"
+    )
+    scale: float = 1.0
+    shift: float = 0.0
+    clip: float | None = Field(None, gt=0, description="clip the reward to [-clip, clip] after scale and shift")
+    probes: list[str] = Field(default_factory=list, description="extra probe files (JSONL with text and harmful)")
+    min_auroc: float = Field(0.8, gt=0.5, le=1.0, description="polarity preflight: AUROC needed to call the reward ok")
+
+
+class KLSection(Section):
+    """[kl] per-token KL penalty against the reference (Ziegler et al. 2019)."""
+
+    coef: float = Field(0.1, ge=0, description="beta; the starting value when target is set")
+    target: float | None = Field(None, gt=0, description="set to adapt beta towards this KL per sample (Ziegler et al. 2019)")
+    gain: float = Field(0.1, gt=0, le=1, description="K_beta of the adaptive controller")
+
+
+class PPOSection(Section):
+    """[ppo] the clipped policy-optimisation update (Schulman et al. 2017)."""
+
+    steps: int = Field(20, ge=1, le=1_000_000)
+    prompts_per_step: int = Field(16, ge=1, le=65536)
+    minibatch: int = Field(8, ge=1, le=65536)
+    epochs: int = Field(4, ge=1, le=100)
+    learning_rate: float = Field(1e-4, gt=0, le=1)
+    clip_epsilon: float = Field(0.2, gt=0, lt=1)
+    value_clip: float = Field(0.2, gt=0)
+    value_weight: float = Field(0.5, ge=0)
+    gamma: float = Field(1.0, ge=0, le=1)
+    gae_lambda: float = Field(0.95, ge=0, le=1)
+    max_grad_norm: float = Field(1.0, gt=0)
+    whiten_advantages: bool = True
+
+    @model_validator(mode="after")
+    def _minibatch_divides(self) -> PPOSection:
+        if self.prompts_per_step % self.minibatch:
+            raise ValueError(
+                f"minibatch ({self.minibatch}) must divide prompts_per_step ({self.prompts_per_step}); "
+                f"try minibatch = {_largest_divisor(self.prompts_per_step, self.minibatch)}"
+            )
+        return self
+
+
+class GenerationSection(Section):
+    """[generation] sampling limits (training rollouts always sample at temperature 1, no top-k/top-p)."""
+
+    max_new_tokens: int = Field(32, ge=1, le=4096)
+    max_prompt_tokens: int = Field(64, ge=1, le=8192)
+
+
+class DataSection(Section):
+    """[data] prompts: JSONL, CSV, Parquet or a saved dataset folder."""
+
+    prompts: str = Field(description="training prompts (and held-out ones, unless heldout is set)")
+    heldout: str | None = Field(None, description="explicit held-out prompts; otherwise split from prompts by seed")
+    text_field: str = "prompt"
+    heldout_share: float = Field(0.2, gt=0, lt=1)
+    bad_rows: Literal["error", "skip"] = "error"
+    max_chars: int = Field(2000, ge=1)
+
+
+def _default_judge() -> ScorerSection:
+    # alt-profanity-check's own vectorizer + linear model, trained independently of this project.
+    return ScorerSection(backend="sklearn", source="profanity_check.profanity_check:vectorizer,model", harmful_labels=["1"])
+
+
+class EvaluationSection(Section):
+    """[evaluation] held-out before/after measurement with an outside judge."""
+
+    samples_per_prompt: int = Field(4, ge=1, le=1000, description="k samples per prompt (Gehman et al. 2020)")
+    max_prompts: int = Field(0, ge=0, description="0 evaluates every held-out prompt")
+    harm_threshold: float = Field(0.5, gt=0, lt=1)
+    bootstrap_resamples: int = Field(1000, ge=100, le=100_000)
+    judge: ScorerSection | None = Field(default_factory=_default_judge, description="a second, independent classifier")
+
+
+class RunSection(Section):
+    """[run] where results go and how they are made repeatable."""
+
+    name: str = "experiment"
+    out: str | None = Field(None, description="run folder; default runs/<name> under the working folder")
+    seed: int = Field(0, ge=0)
+    checkpoint_every: int = Field(0, ge=0, description="steps between checkpoints; 0 saves only on exit")
+
+
+class SweepSection(Section):
+    """[sweep] trials over config keys; each trial is one normal run."""
+
+    grid: dict[str, list[Any]] = Field(default_factory=dict, description='dotted keys to value lists, e.g. "kl.coef" = [0.05, 0.2]')
+    seeds: list[int] = Field(default_factory=list, description="repeat every grid point with these seeds")
+    out: str | None = None
+
+
+class Experiment(Section):
+    base: BaseSection
+    lora: LoraSection = Field(default_factory=LoraSection)
+    reference: ReferenceSection = Field(default_factory=ReferenceSection)
+    reward: RewardSection
+    kl: KLSection = Field(default_factory=KLSection)
+    ppo: PPOSection = Field(default_factory=PPOSection)
+    generation: GenerationSection = Field(default_factory=GenerationSection)
+    data: DataSection
+    evaluation: EvaluationSection = Field(default_factory=EvaluationSection)
+    run: RunSection = Field(default_factory=RunSection)
+    sweep: SweepSection | None = None
+
+
+def _largest_divisor(n: int, at_most: int) -> int:
+    return max(d for d in range(1, min(n, at_most) + 1) if n % d == 0)
+
+
+# Keys whose values are file paths (always resolved) or model sources (resolved when they look like paths).
+PATH_KEYS = {"data.prompts", "data.heldout", "reward.probes", "run.out", "sweep.out"}
+SOURCE_KEYS = {"base.model", "reward.source", "evaluation.judge.source"}
+
+
+def cache_dir() -> Path:
+    """Where built demo/test models live: $ALIGNRUN_CACHE, else the user's cache folder."""
+    if os.environ.get("ALIGNRUN_CACHE"):
+        return Path(os.environ["ALIGNRUN_CACHE"]).expanduser()
+    base = os.environ.get("XDG_CACHE_HOME") or Path.home() / ".cache"
+    return Path(base) / "alignrun"
+
+
+def _resolve_one(value: str, folder: Path, source_like: bool) -> str:
+    value = value.replace("{cache}", str(cache_dir()))
+    p = Path(value).expanduser()
+    if p.is_absolute():
+        return str(p)
+    if source_like and not (value.startswith(".") or (folder / p).exists()):
+        return value  # a hub name or an importable module, not a path
+    return str((folder / p).resolve())
+
+
+def _resolve_paths(tree: dict[str, Any], folder: Path, prefix: str = "") -> None:
+    for key, value in tree.items():
+        dotted = f"{prefix}{key}"
+        if isinstance(value, dict):
+            _resolve_paths(value, folder, dotted + ".")
+        elif dotted in PATH_KEYS or dotted in SOURCE_KEYS:
+            source_like = dotted in SOURCE_KEYS
+            is_module = source_like and isinstance(value, str) and ":" in value and not Path(value).exists()
+            if isinstance(value, str) and not is_module:
+                tree[key] = _resolve_one(value, folder, source_like)
+            elif isinstance(value, list):
+                tree[key] = [_resolve_one(v, folder, source_like) if isinstance(v, str) else v for v in value]
+
+
+def _merge(into: dict[str, Any], new: dict[str, Any], origin: dict[str, str], where: str, prefix: str = "") -> None:
+    for key, value in new.items():
+        dotted = f"{prefix}{key}"
+        if isinstance(value, dict) and isinstance(into.get(key), dict):
+            _merge(into[key], value, origin, where, dotted + ".")
+        else:
+            into[key] = value
+            _note_origin(value, origin, where, dotted)
+
+
+def _note_origin(value: Any, origin: dict[str, str], where: str, dotted: str) -> None:
+    origin[dotted] = where
+    if isinstance(value, dict):
+        for k, v in value.items():
+            _note_origin(v, origin, where, f"{dotted}.{k}")
+
+
+def _read_toml(path: Path) -> dict[str, Any]:
+    if not path.is_file():
+        raise UserError(f"{path}: config file not found (expected a TOML file; check the path)")
+    try:
+        with path.open("rb") as fh:
+            return tomllib.load(fh)
+    except tomllib.TOMLDecodeError as exc:
+        raise UserError(f"{path}: not valid TOML: {exc}") from None
+    except UnicodeDecodeError:
+        raise UserError(f"{path}: not a text file (expected UTF-8 TOML)") from None
+
+
+def _load_tree(path: Path, origin: dict[str, str], chain: tuple[Path, ...] = ()) -> dict[str, Any]:
+    path = path.resolve()
+    if path in chain:
+        cycle = " -> ".join(str(p) for p in (*chain, path))
+        raise UserError(f"{chain[-1]}: key 'extends' makes a cycle: {cycle}; remove one of the 'extends' lines")
+    raw = _read_toml(path)
+    _resolve_paths(raw, path.parent)
+    parent = raw.pop("extends", None)
+    merged: dict[str, Any] = {}
+    if parent is not None:
+        if not isinstance(parent, str):
+            raise UserError(f"{path}: key 'extends' must be a file name (string), found {parent!r}")
+        parent_path = (path.parent / parent).expanduser()
+        if not parent_path.is_file():
+            raise UserError(f"{path}: key 'extends' names {parent_path}, which does not exist")
+        merged = _load_tree(parent_path, origin, (*chain, path))
+    _merge(merged, raw, origin, str(path))
+    return merged
+
+
+def parse_override(text: str) -> tuple[list[str], Any]:
+    """`kl.coef=0.1` -> (["kl", "coef"], 0.1); values are TOML literals, bare words are strings."""
+    key, sep, value = text.partition("=")
+    key = key.strip()
+    parts = key.split(".")
+    if not sep or not key or any(not p.strip() for p in parts):
+        raise UserError(f"--set {text!r}: expected KEY=VALUE with a dotted key, e.g. --set kl.coef=0.1")
+    try:
+        parsed = tomllib.loads(f"v = {value.strip()}")["v"]
+    except tomllib.TOMLDecodeError:
+        parsed = value.strip()
+    return [p.strip() for p in parts], parsed
+
+
+def apply_override(tree: dict[str, Any], text: str, origin: dict[str, str]) -> None:
+    parts, value = parse_override(text)
+    dotted = ".".join(parts)
+    if isinstance(value, str) and dotted in PATH_KEYS | SOURCE_KEYS:
+        value = _resolve_one(value, Path.cwd(), dotted in SOURCE_KEYS)
+    node = tree
+    for i, part in enumerate(parts[:-1]):
+        child = node.setdefault(part, {})
+        if not isinstance(child, dict):
+            raise UserError(f"--set {text!r}: '{'.'.join(parts[: i + 1])}' is a value, not a section")
+        node = child
+    node[parts[-1]] = value
+    origin[dotted] = f"--set {text}"
+
+
+def _allowed_keys(model: type[BaseModel], loc: tuple[Any, ...]) -> list[str]:
+    for part in loc:
+        field = model.model_fields.get(str(part))
+        if field is None:
+            return []
+        ann = field.annotation
+        nested = [a for a in getattr(ann, "__args__", (ann,)) if isinstance(a, type) and issubclass(a, BaseModel)]
+        if not nested:
+            return []
+        model = nested[0]
+    return list(model.model_fields)
+
+
+def _describe_error(err: dict[str, Any], origin: dict[str, str], default_file: str) -> str:
+    loc = tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-after")))
+    dotted = ".".join(str(p) for p in loc)
+    where = origin.get(dotted) or origin.get(".".join(str(p) for p in loc[:-1])) or default_file
+    kind = err["type"]
+    if kind == "extra_forbidden":
+        allowed = _allowed_keys(Experiment, loc[:-1])
+        hint = difflib.get_close_matches(str(loc[-1]), allowed, n=1)
+        did = f"; did you mean '{hint[0]}'?" if hint else ""
+        section = ".".join(str(p) for p in loc[:-1]) or "top level"
+        return f"{where}: unknown key '{dotted}'{did} (keys allowed in [{section}]: {', '.join(allowed)})"
+    if kind == "missing":
+        return f"{where}: required key '{dotted}' is missing"
+    expected = err["msg"]
+    if kind == "value_error":
+        expected = expected.removeprefix("Value error, ")
+        return f"{where}: [{dotted or 'config'}] {expected}"
+    return f"{where}: key '{dotted}' has value {err.get('input')!r}; expected: {expected}"
+
+
+def load_config(path: str | Path, overrides: list[str] | tuple[str, ...] = ()) -> Experiment:
+    """Load, merge, override and validate one experiment config; raises UserError with every problem listed."""
+    path = Path(path)
+    origin: dict[str, str] = {}
+    tree = _load_tree(path, origin)
+    for text in overrides:
+        apply_override(tree, text, origin)
+    tree.setdefault("run", {}).setdefault("name", path.stem)
+    try:
+        return Experiment.model_validate(tree)
+    except ValidationError as exc:
+        lines = [_describe_error(e, origin, str(path)) for e in exc.errors()]
+        raise UserError("invalid config:\n  " + "\n  ".join(lines)) from None
+
+
+def to_toml(cfg: Experiment) -> str:
+    """The fully resolved config, defaults included, as TOML that loads back to the same values."""
+    return tomli_w.dumps(cfg.model_dump(mode="json", exclude_none=True))
+
+
+def with_overrides(cfg: Experiment, updates: dict[str, Any]) -> Experiment:
+    """A copy of cfg with dotted keys replaced, validated again (used by sweeps)."""
+    tree = cfg.model_dump(mode="json", exclude_none=True)
+    origin: dict[str, str] = {}
+    for key, value in updates.items():
+        node = tree
+        parts = key.split(".")
+        for part in parts[:-1]:
+            node = node.setdefault(part, {})
+        node[parts[-1]] = value
+        origin[key] = "sweep"
+    try:
+        return Experiment.model_validate(tree)
+    except ValidationError as exc:
+        raise UserError("invalid sweep trial:\n  " + "\n  ".join(_describe_error(e, origin, "sweep") for e in exc.errors())) from None
