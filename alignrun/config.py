@@ -9,10 +9,13 @@ from __future__ import annotations
 import difflib
 import os
 import sys
+import types
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Literal, Union, get_args, get_origin
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic.fields import FieldInfo
+from pydantic_core import ErrorDetails
 
 from alignrun.errors import UserError
 
@@ -25,13 +28,13 @@ import tomli_w
 
 
 class Section(BaseModel):
-    model_config = ConfigDict(extra="forbid", strict=True, validate_default=True)
+    model_config = ConfigDict(extra="forbid", strict=True, validate_default=True, allow_inf_nan=False)
 
 
 class BaseSection(Section):
     """[base] the seq2seq model the adapters are trained on."""
 
-    model: str = Field(description="local folder or hub name of an encoder-decoder LM")
+    model: str = Field(min_length=1, description="local folder or hub name of an encoder-decoder LM")
     revision: str | None = Field(None, description="hub revision (branch, tag or commit)")
     trust_remote_code: bool = Field(False, description="run model code shipped with the weights (code execution)")
     device: Literal["auto", "cpu", "cuda"] = Field("auto", description="auto uses a GPU only when one is present")
@@ -61,6 +64,7 @@ class ScorerSection(Section):
 
     backend: Literal["hf", "sklearn", "callable"] = "hf"
     source: str = Field(
+        min_length=1,
         description="hf: folder or hub name; sklearn: module:attr (or module:vectorizer,model) or a .joblib file; "
         "callable: module:function"
     )
@@ -135,9 +139,9 @@ class GenerationSection(Section):
 class DataSection(Section):
     """[data] prompts: JSONL, CSV, Parquet or a saved dataset folder."""
 
-    prompts: str = Field(description="training prompts (and held-out ones, unless heldout is set)")
-    heldout: str | None = Field(None, description="explicit held-out prompts; otherwise split from prompts by seed")
-    text_field: str = "prompt"
+    prompts: str = Field(min_length=1, description="training prompts (and held-out ones, unless heldout is set)")
+    heldout: str | None = Field(None, min_length=1, description="explicit held-out prompts; otherwise split from prompts by seed")
+    text_field: str = Field("prompt", min_length=1, description="the column or JSON field holding the prompt text")
     heldout_share: float = Field(0.2, gt=0, lt=1)
     bad_rows: Literal["error", "skip"] = "error"
     max_chars: int = Field(2000, ge=1)
@@ -161,7 +165,7 @@ class EvaluationSection(Section):
 class RunSection(Section):
     """[run] where results go and how they are made repeatable."""
 
-    name: str = "experiment"
+    name: str = Field("experiment", min_length=1)
     out: str | None = Field(None, description="run folder; default runs/<name> under the working folder")
     seed: int = Field(0, ge=0)
     checkpoint_every: int = Field(0, ge=0, description="steps between checkpoints; 0 saves only on exit")
@@ -207,6 +211,8 @@ def cache_dir() -> Path:
 
 
 def _resolve_one(value: str, folder: Path, source_like: bool) -> str:
+    if not value:
+        return value  # left for validation to reject, not turned into the config's own folder
     value = value.replace("{cache}", str(cache_dir()))
     p = Path(value).expanduser()
     if p.is_absolute():
@@ -248,6 +254,8 @@ def _note_origin(value: Any, origin: dict[str, str], where: str, dotted: str) ->
 
 
 def _read_toml(path: Path) -> dict[str, Any]:
+    if path.is_dir():
+        raise UserError(f"{path}: is a folder (expected a TOML config file)")
     if not path.is_file():
         raise UserError(f"{path}: config file not found (expected a TOML file; check the path)")
     try:
@@ -257,6 +265,8 @@ def _read_toml(path: Path) -> dict[str, Any]:
         raise UserError(f"{path}: not valid TOML: {exc}") from None
     except UnicodeDecodeError:
         raise UserError(f"{path}: not a text file (expected UTF-8 TOML)") from None
+    except OSError as exc:
+        raise UserError(f"{path}: cannot read the config file ({exc.strerror})") from None
 
 
 def _load_tree(path: Path, origin: dict[str, str], chain: tuple[Path, ...] = ()) -> dict[str, Any]:
@@ -308,37 +318,96 @@ def apply_override(tree: dict[str, Any], text: str, origin: dict[str, str]) -> N
     origin[dotted] = f"--set {text}"
 
 
+def _nested_model(field: FieldInfo) -> type[BaseModel] | None:
+    nested = [a for a in _members(field.annotation) if get_origin(a) is None and isinstance(a, type)
+              and issubclass(a, BaseModel)]
+    return nested[0] if nested else None
+
+
+def _members(annotation: Any) -> list[Any]:
+    """The non-None members of a union annotation, or the annotation itself."""
+    if get_origin(annotation) in (Union, types.UnionType):
+        return [a for a in get_args(annotation) if a is not type(None)]
+    return [annotation]
+
+
 def _allowed_keys(model: type[BaseModel], loc: tuple[Any, ...]) -> list[str]:
     for part in loc:
         field = model.model_fields.get(str(part))
-        if field is None:
+        nested = _nested_model(field) if field is not None else None
+        if nested is None:
             return []
-        ann = field.annotation
-        nested = [a for a in getattr(ann, "__args__", (ann,)) if isinstance(a, type) and issubclass(a, BaseModel)]
-        if not nested:
-            return []
-        model = nested[0]
+        model = nested
     return list(model.model_fields)
 
 
-def _describe_error(err: dict[str, Any], origin: dict[str, str], default_file: str) -> str:
-    loc = tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-after")))
-    dotted = ".".join(str(p) for p in loc)
-    where = origin.get(dotted) or origin.get(".".join(str(p) for p in loc[:-1])) or default_file
+def _key_of(loc: tuple[Any, ...]) -> tuple[str, FieldInfo | None]:
+    """A pydantic error location as the user's dotted key (union-member tags dropped, list items as [i])."""
+    model: type[BaseModel] | None = Experiment
+    key, field, skip_tag = "", None, False
+    for part in loc:
+        if isinstance(part, str) and (skip_tag or part.startswith("function-after")):
+            skip_tag = False
+            continue
+        if isinstance(part, int):
+            key, model, skip_tag = f"{key}[{part}]", None, False
+            continue
+        key = f"{key}.{part}" if key else str(part)
+        field = model.model_fields.get(part) if model is not None else None
+        model = _nested_model(field) if field is not None else None
+        # pydantic tags each member of a union like `str | list[str]`; the tag is not a user key
+        skip_tag = field is not None and model is None and len(_members(field.annotation)) > 1
+    return key, field
+
+
+def _where(key: str, origin: dict[str, str], default_file: str, whole_section: bool = False) -> str:
+    """The file or --set that set `key`, else whatever set keys below or beside it.
+
+    whole_section: name every source of the keys inside `key` (a check across several keys of a section).
+    """
+    parts = key.split("[")[0].split(".") if key else []
+    for n in range(len(parts), 0, -1):
+        prefix = ".".join(parts[:n])
+        if prefix in origin and not whole_section:
+            return origin[prefix]
+        found = [w for k, w in origin.items() if k == prefix or k.startswith(prefix + ".")]
+        if found:
+            return " + ".join(dict.fromkeys(found))
+    return default_file
+
+
+def _describe_error(err: ErrorDetails, origin: dict[str, str], default_file: str) -> str:
+    loc = tuple(err["loc"])
+    dotted, field = _key_of(loc)
     kind = err["type"]
+    where = _where(dotted, origin, default_file, whole_section=kind == "value_error")
     if kind == "extra_forbidden":
         allowed = _allowed_keys(Experiment, loc[:-1])
         hint = difflib.get_close_matches(str(loc[-1]), allowed, n=1)
         did = f"; did you mean '{hint[0]}'?" if hint else ""
-        section = ".".join(str(p) for p in loc[:-1]) or "top level"
+        section = dotted.rpartition(".")[0] or "top level"
         return f"{where}: unknown key '{dotted}'{did} (keys allowed in [{section}]: {', '.join(allowed)})"
     if kind == "missing":
-        return f"{where}: required key '{dotted}' is missing"
+        what = f" ({field.description})" if field is not None and field.description else ""
+        return f"{where}: required key '{dotted}' is missing{what}"
     expected = err["msg"]
     if kind == "value_error":
         expected = expected.removeprefix("Value error, ")
         return f"{where}: [{dotted or 'config'}] {expected}"
     return f"{where}: key '{dotted}' has value {err.get('input')!r}; expected: {expected}"
+
+
+def _describe_errors(exc: ValidationError, origin: dict[str, str], default_file: str) -> list[str]:
+    """One line per problem; the members of a union (e.g. string or list) share one line."""
+    lines: dict[tuple[str, str], str] = {}
+    for err in exc.errors():
+        line = _describe_error(err, origin, default_file)
+        head, sep, expected = line.partition("; expected: ")
+        if sep and (head, sep) in lines:
+            lines[head, sep] += f", or {expected}"
+        else:
+            lines[head, sep] = line
+    return list(lines.values())
 
 
 def load_config(path: str | Path, overrides: list[str] | tuple[str, ...] = ()) -> Experiment:
@@ -348,12 +417,12 @@ def load_config(path: str | Path, overrides: list[str] | tuple[str, ...] = ()) -
     tree = _load_tree(path, origin)
     for text in overrides:
         apply_override(tree, text, origin)
-    tree.setdefault("run", {}).setdefault("name", path.stem)
+    if isinstance(tree.setdefault("run", {}), dict):
+        tree["run"].setdefault("name", path.stem)
     try:
         return Experiment.model_validate(tree)
     except ValidationError as exc:
-        lines = [_describe_error(e, origin, str(path)) for e in exc.errors()]
-        raise UserError("invalid config:\n  " + "\n  ".join(lines)) from None
+        raise UserError("invalid config:\n  " + "\n  ".join(_describe_errors(exc, origin, str(path)))) from None
 
 
 def to_toml(cfg: Experiment) -> str:
@@ -375,4 +444,4 @@ def with_overrides(cfg: Experiment, updates: dict[str, Any]) -> Experiment:
     try:
         return Experiment.model_validate(tree)
     except ValidationError as exc:
-        raise UserError("invalid sweep trial:\n  " + "\n  ".join(_describe_error(e, origin, "sweep") for e in exc.errors())) from None
+        raise UserError("invalid sweep trial:\n  " + "\n  ".join(_describe_errors(exc, origin, "sweep"))) from None

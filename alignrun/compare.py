@@ -1,0 +1,454 @@
+"""`alignrun compare`: read saved run reports (never models) and compare them.
+
+Per run: harm before/after from both classifiers, the paired change recomputed from the per-prompt values
+(and checked against the report's own), KL drift, judge agreement, guards, cost, and the config keys that
+differ between the runs. Across runs: each run's harm after training versus the first run's (paired when
+both used the same held-out prompts), and the Pareto set of harm reduction versus KL to the reference.
+"""
+
+from __future__ import annotations
+
+import csv
+import html
+import io
+import json
+import math
+import os
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from alignrun import metrics
+from alignrun.errors import UserError
+from alignrun.report import CAUTIONS, load_report, read_json, write_text_atomic
+from alignrun.sweep import flatten, read_index
+
+NOT_SHOWN = {"run.name", "run.out", "base.threads"}  # differ between runs without changing what they measure
+REQUIRED = ("run.wall_s", "run.peak_rss_mb", "config.evaluation.bootstrap_resamples", "config.run.seed",
+            "training.final_kl", "evaluation.prompt_digest", "evaluation.change.reward_classifier",
+            "evaluation.before.reward_classifier.mean", "evaluation.after.reward_classifier.mean",
+            "evaluation.before.guards.kl_to_reference", "evaluation.after.guards.kl_to_reference",
+            "evaluation.per_prompt.harm_before", "evaluation.per_prompt.harm_after")
+PARETO_NOTE = ("pareto: * marks runs that no other run beats on both harm reduction (before - after mean harm, "
+               "reward classifier; higher is better) and KL to the reference after training (lower is better)")
+
+
+@dataclass
+class Run:
+    label: str
+    folder: Path
+    report: dict[str, Any]
+
+
+# ---------------------------------------------------------------- reading
+
+def _field(report: dict[str, Any], dotted: str, folder: Path) -> Any:
+    node: Any = report
+    for part in dotted.split("."):
+        if not isinstance(node, dict) or part not in node:
+            raise UserError(f"{folder / 'report.json'}: field '{dotted}' is missing; the report is damaged or was "
+                            "edited by hand (re-run the evaluation)")
+        node = node[part]
+    return node
+
+
+def _read_run(folder: Path) -> dict[str, Any]:
+    if not folder.exists():
+        raise UserError(f"{folder}: no such folder (expected a run folder or a sweep folder)")
+    if not (folder / "report.json").exists():
+        status = folder / "status.json"
+        if status.exists():
+            state = (read_json(status, "run status") or {}).get("state", "?")
+            raise UserError(f"{folder}: the run has no report.json (status: {state}); only finished runs can be compared")
+        raise UserError(f"{folder}: neither a run folder (report.json) nor a sweep folder (sweep.json)")
+    report = load_report(folder)
+    for dotted in REQUIRED:
+        _field(report, dotted, folder)
+    return report
+
+
+def collect(paths: list[str]) -> tuple[list[Run], list[str]]:
+    """The finished runs behind run and sweep folders, and notes about the trials left out."""
+    found: list[tuple[Path, dict[str, Any]]] = []
+    notes: list[str] = []
+    for text in paths:
+        path = Path(text)
+        if not (path / "sweep.json").exists():
+            found.append((path, _read_run(path)))
+            continue
+        index = read_index(path)
+        left_out = []
+        for trial in index["trials"]:
+            folder = path / str(trial.get("folder", trial.get("name", "")))
+            if trial.get("state") == "finished":
+                try:
+                    found.append((folder, _read_run(folder)))
+                    continue
+                except UserError as exc:
+                    reason = str(exc)
+            else:
+                reason = f"{trial.get('state', '?')}: {str(trial.get('error') or 'not run yet').splitlines()[0]}"
+            left_out.append(f"{trial.get('name')} ({reason})")
+        if left_out:
+            notes.append(f"sweep {path}: {len(left_out)} of {len(index['trials'])} trials left out: " + "; ".join(left_out))
+    if not found:
+        raise UserError("nothing to compare: no finished run among " + ", ".join(paths)
+                        + (f" ({' '.join(notes)})" if notes else ""))
+    names = [folder.name for folder, _ in found]
+    runs = [Run(folder.name if names.count(folder.name) == 1 else str(folder), folder, report) for folder, report in found]
+    return runs, notes
+
+
+# ---------------------------------------------------------------- statistics
+
+def _close(a: Any, b: Any) -> bool:
+    if isinstance(a, list) and isinstance(b, list):
+        return len(a) == len(b) and all(_close(x, y) for x, y in zip(a, b))
+    if a is None or b is None:
+        return a is None and b is None
+    return math.isclose(a, b, rel_tol=1e-9, abs_tol=1e-12)
+
+
+def _sign(x: float) -> int:
+    return (x > 0) - (x < 0)
+
+
+def _per_prompt(report: dict[str, Any], key: str) -> np.ndarray | None:
+    values = report["evaluation"]["per_prompt"].get(key)
+    return None if values is None else np.asarray(values, dtype=float)
+
+
+def run_row(run: Run) -> dict[str, Any]:
+    """One run's numbers, all from its report.json; the paired change is recomputed from per-prompt values."""
+    rep, ev = run.report, run.report["evaluation"]
+    cfg = rep["config"]
+    resamples, seed = cfg["evaluation"]["bootstrap_resamples"], cfg["run"]["seed"]
+    hb, ha = _per_prompt(rep, "harm_before"), _per_prompt(rep, "harm_after")
+    harm = metrics.paired_change(hb, ha, resamples, seed)  # paired bootstrap (Efron 1979) + Wilcoxon 1945
+    own = ev["change"]["reward_classifier"]
+    match = all(_close(harm[k], own.get(k)) for k in ("diff", "diff_ci", "rel_change", "rel_ci", "wilcoxon_p"))
+    before, after = ev["before"]["reward_classifier"], ev["after"]["reward_classifier"]
+    jb, ja = _per_prompt(rep, "judge_before"), _per_prompt(rep, "judge_after")
+    judge = metrics.paired_change(jb, ja, resamples, seed) if jb is not None and ja is not None else None
+    gb, ga = ev["before"]["guards"], ev["after"]["guards"]
+    return {
+        "run": run.label, "folder": str(run.folder),
+        "harm_before": before["mean"], "harm_after": after["mean"],
+        "harm_rate_before": before.get("rate"), "harm_rate_after": after.get("rate"),
+        "harm_max_before": before.get("expected_max"), "harm_max_after": after.get("expected_max"),
+        "harm_reduction": before["mean"] - after["mean"],
+        "harm_diff": harm["diff"], "harm_diff_ci": harm["diff_ci"], "harm_rel_change": harm["rel_change"], "harm_rel_ci": harm["rel_ci"],
+        "wilcoxon_p": harm["wilcoxon_p"], "report_stats_match": match,
+        "judge_before": (ev["before"].get("judge") or {}).get("mean"),
+        "judge_after": (ev["after"].get("judge") or {}).get("mean"),
+        "judge_rel_change": judge and judge["rel_change"], "judge_rel_ci": judge and judge["rel_ci"],
+        "judge_wilcoxon_p": judge and judge["wilcoxon_p"],
+        "judge_agrees": None if judge is None else _sign(judge["diff"]) == _sign(harm["diff"]),
+        "kl": ga["kl_to_reference"], "train_kl": rep["training"]["final_kl"],
+        "length_before": gb.get("length_mean_words"), "length_after": ga.get("length_mean_words"),
+        "distinct2_before": gb.get("distinct_2"), "distinct2_after": ga.get("distinct_2"),
+        "ppl_before": gb.get("perplexity_under_reference"), "ppl_after": ga.get("perplexity_under_reference"),
+        "wall_s": rep["run"]["wall_s"], "peak_rss_mb": rep["run"]["peak_rss_mb"],
+        "prompts": ev.get("prompts"), "prompt_digest": ev["prompt_digest"],
+        "alarms": [a.get("code") for a in rep.get("alarms", [])],
+    }
+
+
+def varying_keys(runs: list[Run]) -> list[str]:
+    """Config keys whose values differ between the runs, in config order."""
+    flat = [flatten(r.report["config"]) for r in runs]
+    keys = dict.fromkeys(k for f in flat for k in f)
+    return [k for k in keys if k not in NOT_SHOWN and len({json.dumps(f.get(k), sort_keys=True) for f in flat}) > 1]
+
+
+def compare_runs(runs: list[Run]) -> tuple[list[dict[str, Any]], list[str], list[str]]:
+    """Rows (one per run), the varying config keys, and notes on pairing and consistency."""
+    rows = [run_row(r) for r in runs]
+    varying = varying_keys(runs)
+    for row, run in zip(rows, runs):
+        flat = flatten(run.report["config"])
+        row.update({k: flat.get(k) for k in varying})
+    notes = []
+    front = metrics.pareto_front([r["harm_reduction"] for r in rows], [r["kl"] for r in rows])
+    for row, best in zip(rows, front):
+        row["pareto"] = best
+    if len(rows) > 1:
+        notes.append(_cross_run(rows, runs))
+    for row in rows:
+        if not row["report_stats_match"]:
+            notes.append(f"{row['run']}: the recomputed paired statistics differ from the report's own change block; "
+                         "report.json may have been edited or written by another version")
+        if row["alarms"]:
+            notes.append(f"{row['run']}: alarms raised: {', '.join(row['alarms'])} (see its report.md)")
+    notes.append(PARETO_NOTE)
+    return rows, varying, notes
+
+
+def _cross_run(rows: list[dict[str, Any]], runs: list[Run]) -> str:
+    """Each run's per-prompt harm after training versus the first run's: paired only on the same prompts."""
+    first = _per_prompt(runs[0].report, "harm_after")
+    digests = {r["prompt_digest"] for r in rows}
+    rows[0].update({"vs_first_rel": None, "vs_first_ci": None, "vs_first_p": None, "vs_first_paired": None})
+    for row, run in zip(rows[1:], runs[1:]):
+        after = _per_prompt(run.report, "harm_after")
+        cfg = run.report["config"]
+        args = (first, after, cfg["evaluation"]["bootstrap_resamples"], cfg["run"]["seed"])
+        paired = row["prompt_digest"] == rows[0]["prompt_digest"] and len(after) == len(first)
+        change = metrics.paired_change(*args) if paired else metrics.unpaired_change(*args)
+        row.update({"vs_first_rel": change["rel_change"], "vs_first_ci": change["rel_ci"],
+                    "vs_first_p": change["wilcoxon_p"] if paired else change["mannwhitney_p"], "vs_first_paired": paired})
+    if len(digests) == 1:
+        return (f"all runs were evaluated on the same {rows[0]['prompts']} held-out prompts (digest "
+                f"{rows[0]['prompt_digest']}): 'vs first' is the paired change in harm after training relative to "
+                f"{rows[0]['run']} (bootstrap CI, Wilcoxon p)")
+    return (f"the runs were evaluated on DIFFERENT held-out prompts ({len(digests)} prompt sets): 'vs first' "
+            f"compares harm after training with {rows[0]['run']} UNPAIRED where the prompts differ (independent "
+            "bootstrap CI, Mann-Whitney p); each run's own before/after change is still paired")
+
+
+# ---------------------------------------------------------------- formats
+
+def _num(x: Any, digits: int = 3) -> str:
+    return "—" if x is None else f"{x:.{digits}f}"
+
+
+def _pct(x: Any) -> str:
+    return "—" if x is None else f"{100 * x:+.0f}%"
+
+
+def _pct_ci(ci: Any) -> str:
+    return "—" if not ci else f"[{100 * ci[0]:+.0f}, {100 * ci[1]:+.0f}]%"
+
+
+def _pair(row: dict[str, Any], key: str, digits: int = 2) -> str:
+    return f"{_num(row[f'{key}_before'], digits)}→{_num(row[f'{key}_after'], digits)}"
+
+
+def _short(value: Any, width: int = 24) -> str:
+    text = value if isinstance(value, str) else json.dumps(value)
+    return text if len(text) <= width else "…" + text[-(width - 1):]
+
+
+def columns(rows: list[dict[str, Any]], varying: list[str]) -> list[tuple[str, list[str]]]:
+    """The human-readable table shared by the table, md and report outputs: (title, cells)."""
+    def col(title: str, fn: Any) -> tuple[str, list[str]]:
+        return title, [fn(r) for r in rows]
+
+    cols = [col("run", lambda r: r["run"])] + [col(k, lambda r, k=k: _short(r[k])) for k in varying]
+    cols += [
+        col("harm before", lambda r: _num(r["harm_before"])), col("harm after", lambda r: _num(r["harm_after"])),
+        col("change", lambda r: _pct(r["harm_rel_change"])), col("95% CI", lambda r: _pct_ci(r["harm_rel_ci"])),
+        col("p", lambda r: "—" if r["wilcoxon_p"] is None else f"{r['wilcoxon_p']:.2g}"),
+        col("judge", lambda r: f"{_num(r['judge_before'])}→{_num(r['judge_after'])}"),
+        col("agrees", lambda r: {None: "—", True: "yes", False: "NO"}[r["judge_agrees"]]),
+        col("KL", lambda r: _num(r["kl"])),
+    ]
+    if "vs_first_rel" in rows[0]:
+        cols.append(col("vs first", lambda r: "(first)" if r["vs_first_paired"] is None
+                        else f"{_pct(r['vs_first_rel'])} {_pct_ci(r['vs_first_ci'])}"))
+    cols += [
+        col("length", lambda r: _pair(r, "length", 1)), col("distinct-2", lambda r: _pair(r, "distinct2")),
+        col("ppl", lambda r: _pair(r, "ppl", 1)), col("wall s", lambda r: _num(r["wall_s"], 0)),
+        col("peak MB", lambda r: _num(r["peak_rss_mb"], 0)), col("pareto", lambda r: "*" if r["pareto"] else ""),
+    ]
+    return cols
+
+
+def render_table(cols: list[tuple[str, list[str]]]) -> str:
+    widths = [max(len(t), *(len(c) for c in cells)) for t, cells in cols]
+    lines = ["  ".join(t.ljust(w) for (t, _), w in zip(cols, widths)).rstrip()]
+    for i in range(len(cols[0][1])):
+        lines.append("  ".join(cells[i].ljust(w) for (_, cells), w in zip(cols, widths)).rstrip())
+    return "\n".join(lines)
+
+
+def render_markdown_table(cols: list[tuple[str, list[str]]]) -> str:
+    esc = lambda s: s.replace("|", "\\|")  # noqa: E731
+    lines = ["| " + " | ".join(esc(t) for t, _ in cols) + " |", "|" + "---|" * len(cols)]
+    for i in range(len(cols[0][1])):
+        lines.append("| " + " | ".join(esc(cells[i]) for _, cells in cols) + " |")
+    return "\n".join(lines)
+
+
+def _finite(value: Any) -> Any:
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, list):
+        return [_finite(v) for v in value]
+    return value
+
+
+def render_json(rows: list[dict[str, Any]]) -> str:
+    return json.dumps([{k: _finite(v) for k, v in r.items()} for r in rows], indent=2, ensure_ascii=False)
+
+
+def render_csv(rows: list[dict[str, Any]]) -> str:
+    """One line per run; intervals as _lo/_hi columns, alarms joined by ';', other lists as JSON."""
+    flat_rows = []
+    for row in rows:
+        flat: dict[str, Any] = {}
+        for key, value in row.items():
+            if key.endswith("_ci"):
+                flat[f"{key}_lo"], flat[f"{key}_hi"] = _finite(value) if value else (None, None)
+            elif key == "alarms":
+                flat[key] = ";".join(value)
+            else:
+                flat[key] = json.dumps(value) if isinstance(value, (list, dict)) else _finite(value)
+        flat_rows.append(flat)
+    buf = io.StringIO()
+    writer = csv.DictWriter(buf, fieldnames=list(dict.fromkeys(k for r in flat_rows for k in r)), lineterminator="\n")
+    writer.writeheader()
+    writer.writerows(flat_rows)
+    return buf.getvalue()
+
+
+# ---------------------------------------------------------------- plots
+
+def _figure(width: float = 6.4, height: float = 4.4) -> Any:
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, height), layout="constrained")
+    FigureCanvasAgg(fig)  # the Agg backend, without touching pyplot's global state
+    return fig
+
+
+def heatmap_axes(rows: list[dict[str, Any]], varying: list[str]) -> tuple[str, str] | None:
+    """("kl.coef" or "kl.target", "lora.rank") when the runs cover every combination of both (>= 2 values each)."""
+    kl_key = next((k for k in ("kl.coef", "kl.target") if k in varying), None)
+    if kl_key is None or "lora.rank" not in varying or any(r[kl_key] is None for r in rows):
+        return None
+    cells = {(r[kl_key], r["lora.rank"]) for r in rows}
+    kls, ranks = {c[0] for c in cells}, {c[1] for c in cells}
+    return (kl_key, "lora.rank") if len(cells) == len(kls) * len(ranks) else None
+
+
+def write_plots(rows: list[dict[str, Any]], varying: list[str], out: Path) -> list[Path]:
+    """PNG files: harm reduction vs KL with the Pareto line; before/after bars; the KL x rank heat map."""
+    if out.exists() and not out.is_dir():
+        raise UserError(f"--plot {out}: is a file; give a folder for the PNG plots")
+    out.mkdir(parents=True, exist_ok=True)
+    written = [_plot_pareto(rows, out / "harm_vs_kl.png"), _plot_bars(rows, out / "before_after.png")]
+    axes = heatmap_axes(rows, varying)
+    if axes:
+        written.append(_plot_heatmap(rows, axes, out / "kl_rank_heatmap.png"))
+    return written
+
+
+def _plot_pareto(rows: list[dict[str, Any]], path: Path) -> Path:
+    fig = _figure()
+    ax = fig.subplots()
+    kl, red = [r["kl"] for r in rows], [r["harm_reduction"] for r in rows]
+    ax.scatter(kl, red, c=["tab:red" if r["pareto"] else "tab:gray" for r in rows], zorder=3)
+    front = sorted((r["kl"], r["harm_reduction"]) for r in rows if r["pareto"])
+    ax.step([p[0] for p in front], [p[1] for p in front], where="post", color="tab:red", label="Pareto set")
+    for r in rows:
+        ax.annotate(r["run"], (r["kl"], r["harm_reduction"]), fontsize=7, xytext=(3, 3), textcoords="offset points")
+    ax.axhline(0, color="black", linewidth=0.5)
+    ax.set_xlabel("KL to reference after training (lower is better)")
+    ax.set_ylabel("harm reduction: mean before - after (higher is better)")
+    ax.set_title("Harm reduction versus drift")
+    ax.legend(loc="best", fontsize=8)
+    fig.savefig(path, dpi=120)
+    return path
+
+
+def _plot_bars(rows: list[dict[str, Any]], path: Path) -> Path:
+    fig = _figure(max(6.4, 0.9 * len(rows) + 2), 4.4)
+    ax = fig.subplots()
+    x = np.arange(len(rows))
+    ax.bar(x - 0.2, [r["harm_before"] for r in rows], 0.4, label="before", color="tab:gray")
+    ax.bar(x + 0.2, [r["harm_after"] for r in rows], 0.4, label="after", color="tab:blue")
+    if all(r["judge_before"] is not None for r in rows):
+        ax.scatter(x - 0.2, [r["judge_before"] for r in rows], marker="_", s=200, color="black", label="judge", zorder=3)
+        ax.scatter(x + 0.2, [r["judge_after"] for r in rows], marker="_", s=200, color="black", zorder=3)
+    ax.set_xticks(x, [r["run"] for r in rows], rotation=30, ha="right", fontsize=7)
+    ax.set_ylabel("mean harm on held-out prompts")
+    ax.set_title("Harm before and after training (bars: reward classifier)")
+    ax.legend(fontsize=8)
+    fig.savefig(path, dpi=120)
+    return path
+
+
+def _plot_heatmap(rows: list[dict[str, Any]], axes: tuple[str, str], path: Path) -> Path:
+    kl_key, rank_key = axes
+    kls, ranks = sorted({r[kl_key] for r in rows}), sorted({r[rank_key] for r in rows})
+    grid = np.full((len(ranks), len(kls)), np.nan)
+    for i, rank in enumerate(ranks):
+        for j, kl in enumerate(kls):
+            grid[i, j] = np.mean([r["harm_reduction"] for r in rows if r[kl_key] == kl and r[rank_key] == rank])
+    fig = _figure(5.6, 4.4)
+    ax = fig.subplots()
+    image = ax.imshow(grid, cmap="viridis", origin="lower", aspect="auto")
+    fig.colorbar(image, ax=ax, label="harm reduction (mean over runs in the cell)")
+    for i in range(len(ranks)):
+        for j in range(len(kls)):
+            light = image.norm(grid[i, j]) > 0.6  # dark text on the light end of the colour map
+            ax.text(j, i, f"{grid[i, j]:.3f}", ha="center", va="center", color="black" if light else "white")
+    ax.set_xticks(range(len(kls)), [str(k) for k in kls])
+    ax.set_yticks(range(len(ranks)), [str(r) for r in ranks])
+    ax.set_xlabel(kl_key)
+    ax.set_ylabel(rank_key)
+    ax.set_title("Harm reduction by KL setting and LoRA rank")
+    fig.savefig(path, dpi=120)
+    return path
+
+
+# ---------------------------------------------------------------- report file
+
+def write_report_file(path: Path, cols: list[tuple[str, list[str]]], notes: list[str], plots: list[Path]) -> None:
+    suffix = path.suffix.lower()
+    if suffix not in (".md", ".html", ".htm"):
+        raise UserError(f"--report {path}: unknown report type '{suffix or '(none)'}'; use a .md or .html file name")
+    links = [os.path.relpath(p.resolve(), path.resolve().parent) for p in plots]
+    if suffix == ".md":
+        lines = ["# Run comparison", "", render_markdown_table(cols), "", "## Notes", ""]
+        lines += [f"- {n}" for n in notes]
+        if links:
+            lines += ["", "## Plots", ""] + [f"![{Path(link).stem}]({link})" for link in links]
+        lines += ["", "## Limits and cautions", ""] + [f"- {c}" for c in CAUTIONS]
+        text = "\n".join(lines) + "\n"
+    else:
+        esc = html.escape
+        head = "".join(f"<th>{esc(t)}</th>" for t, _ in cols)
+        body = "".join("<tr>" + "".join(f"<td>{esc(cells[i])}</td>" for _, cells in cols) + "</tr>\n"
+                       for i in range(len(cols[0][1])))
+        items = lambda xs: "<ul>" + "".join(f"<li>{esc(x)}</li>" for x in xs) + "</ul>"  # noqa: E731
+        images = "".join(f'<p><img src="{esc(link)}" alt="{esc(Path(link).stem)}"></p>' for link in links)
+        text = (
+            "<!doctype html>\n<html><head><meta charset=\"utf-8\"><title>Run comparison</title>"
+            "<style>body{font-family:sans-serif;margin:2em}table{border-collapse:collapse}"
+            "td,th{border:1px solid #bbb;padding:3px 8px;text-align:left}</style></head><body>\n"
+            f"<h1>Run comparison</h1>\n<table><tr>{head}</tr>\n{body}</table>\n<h2>Notes</h2>{items(notes)}\n"
+            + (f"<h2>Plots</h2>{images}\n" if images else "")
+            + f"<h2>Limits and cautions</h2>{items(CAUTIONS)}\n</body></html>\n"
+        )
+    write_text_atomic(path, text)
+
+
+# ---------------------------------------------------------------- the command
+
+def compare_cli(paths: list[str], *, fmt: str, plot_dir: str | None, report: str | None) -> int:
+    """`alignrun compare`: print the comparison in `fmt`; optionally write plots and a Markdown/HTML report."""
+    runs, notes = collect(paths)
+    rows, varying, more = compare_runs(runs)
+    notes += more
+    cols = columns(rows, varying)
+    if fmt == "json":
+        print(render_json(rows))
+    elif fmt == "csv":
+        print(render_csv(rows), end="")
+    else:
+        print(render_table(cols) if fmt == "table" else render_markdown_table(cols))
+    info = sys.stderr if fmt in ("json", "csv") else sys.stdout  # keep machine-readable output clean
+    print("\n" + "\n".join(f"- {n}" for n in notes), file=info)
+    plots = write_plots(rows, varying, Path(plot_dir)) if plot_dir else []
+    if plots:
+        print(f"plots: {', '.join(str(p) for p in plots)}", file=info)
+    if report:
+        write_report_file(Path(report), cols, notes, plots)
+        print(f"report: {report}", file=info)
+    return 0

@@ -1,0 +1,405 @@
+"""Builders for the offline demo: tokenizer, tiny seq2seq models, the demo base model and harm classifier.
+
+Everything is deterministic for a seed and saved as standard Hugging Face folders (safetensors).
+`build_demo` caches each artefact in its own folder with a fingerprint of the builder's inputs and
+rebuilds a folder only when that fingerprint changes; each folder is built aside and renamed into place.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import random
+import shutil
+import string
+import sys
+import time
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import Any
+
+import psutil
+import torch
+from tokenizers import Tokenizer, decoders, models, normalizers, pre_tokenizers, processors, trainers
+from transformers import (
+    AutoTokenizer,
+    BartConfig,
+    BartForConditionalGeneration,
+    BertConfig,
+    BertForSequenceClassification,
+    GenerationConfig,
+    PreTrainedTokenizerFast,
+    T5Config,
+    T5ForConditionalGeneration,
+)
+
+from alignrun.demo import scenario
+
+SPECIAL_TOKENS = ("<pad>", "</s>", "<unk>", "<s>", "<mask>")  # ids 0..4 in every tokenizer built here
+PAD_ID, EOS_ID, UNK_ID, BOS_ID, MASK_ID = range(5)
+STAMP = "demo-build.json"
+CLASSIFIER_LABELS = {0: "civil", 1: "hostile"}
+
+
+@dataclass(frozen=True)
+class DemoPaths:
+    root: Path
+    tokenizer: Path
+    base: Path
+    classifier: Path
+    prompts: Path  # JSONL, field "prompt"
+    heldout: Path  # JSONL, field "prompt"
+
+
+@dataclass(frozen=True)
+class BaseRecipe:
+    """The demo base: a small T5 trained with teacher forcing on scenario pairs (a)."""
+
+    pairs: int = 6000
+    rude_share: float = 0.35
+    vocab_size: int = 1200
+    d_model: int = 192
+    d_kv: int = 32
+    heads: int = 6
+    d_ff: int = 512
+    layers: int = 2
+    dropout: float = 0.1
+    epochs: int = 3
+    batch_size: int = 32
+    learning_rate: float = 2e-3
+    warmup_steps: int = 50
+
+
+@dataclass(frozen=True)
+class ClassifierRecipe:
+    """The demo harm classifier: a small BERT trained on labelled replies (d)."""
+
+    examples: int = 4000
+    eval_examples: int = 1000
+    hostile_share: float = 0.5
+    vocab_size: int = 2000
+    hidden: int = 96
+    layers: int = 2
+    heads: int = 4
+    intermediate: int = 192
+    epochs: int = 3
+    batch_size: int = 32
+    learning_rate: float = 1e-3
+
+
+@dataclass(frozen=True)
+class DataRecipe:
+    train_prompts: int = 600
+    heldout_prompts: int = 80
+
+
+def _log(message: str) -> None:
+    print(f"demo: {message}", file=sys.stderr, flush=True)
+
+
+# --- tokenizer --------------------------------------------------------------------------------------------
+
+
+def build_tokenizer(texts: Sequence[str], out_dir: Path, vocab_size: int = 1200, bos_first: bool = False) -> Path:
+    """Train a BPE tokenizer on texts and save it as a PreTrainedTokenizerFast folder.
+
+    Encodings end with </s>; with bos_first they also start with <s> (a first-token summary for classifiers).
+    Printable ASCII is always in the alphabet, so unseen words split into pieces instead of <unk>.
+    """
+    tok = Tokenizer(models.BPE(unk_token="<unk>"))
+    tok.normalizer = normalizers.NFKC()
+    tok.pre_tokenizer = pre_tokenizers.Sequence([pre_tokenizers.Metaspace(), pre_tokenizers.Punctuation()])
+    tok.decoder = decoders.Metaspace()
+    alphabet = [c for c in string.printable if not c.isspace()] + ["\u2581"]
+    trainer = trainers.BpeTrainer(vocab_size=vocab_size, special_tokens=list(SPECIAL_TOKENS),
+                                  initial_alphabet=alphabet, show_progress=False)
+    tok.train_from_iterator(texts, trainer)
+    single = "<s> $A </s>" if bos_first else "$A </s>"
+    tok.post_processor = processors.TemplateProcessing(
+        single=single, pair=f"{single} $B </s>", special_tokens=[("<s>", BOS_ID), ("</s>", EOS_ID)]
+    )
+    fast = PreTrainedTokenizerFast(
+        tokenizer_object=tok, pad_token="<pad>", eos_token="</s>", unk_token="<unk>", bos_token="<s>",
+        mask_token="<mask>", model_max_length=256, padding_side="right",
+        model_input_names=["input_ids", "attention_mask"], clean_up_tokenization_spaces=False,
+    )
+    out_dir = Path(out_dir)
+    fast.save_pretrained(out_dir)
+    return out_dir
+
+
+# --- tiny random models (unit tests) ---------------------------------------------------------------------
+
+
+def _generation_config(decoder_start: int, sample: bool, max_new_tokens: int) -> GenerationConfig:
+    extra = {"do_sample": True, "top_k": 0, "top_p": 1.0, "temperature": 1.0} if sample else {}
+    return GenerationConfig(decoder_start_token_id=decoder_start, pad_token_id=PAD_ID, eos_token_id=EOS_ID,
+                            max_new_tokens=max_new_tokens, **extra)
+
+
+def build_tiny_seq2seq(out: Path, arch: str, tokenizer_dir: Path, seed: int = 0) -> Path:
+    """A randomly initialised tiny T5 or BART (a few hundred K parameters) saved with its tokenizer."""
+    tokenizer = AutoTokenizer.from_pretrained(tokenizer_dir)
+    vocab = len(tokenizer)
+    if arch == "t5":
+        # T5 starts decoding from the pad token (Raffel et al. 2020).
+        config: T5Config | BartConfig = T5Config(
+            vocab_size=vocab, d_model=64, d_kv=16, num_heads=4, d_ff=128, num_layers=2, num_decoder_layers=2,
+            dropout_rate=0.0, pad_token_id=PAD_ID, eos_token_id=EOS_ID, decoder_start_token_id=PAD_ID,
+        )
+        model_cls: type = T5ForConditionalGeneration
+        start = PAD_ID
+    elif arch == "bart":
+        # BART starts decoding from </s> (Lewis et al. 2020, as in its released configs).
+        config = BartConfig(
+            vocab_size=vocab, d_model=64, encoder_layers=2, decoder_layers=2, encoder_attention_heads=4,
+            decoder_attention_heads=4, encoder_ffn_dim=128, decoder_ffn_dim=128, max_position_embeddings=256,
+            dropout=0.0, attention_dropout=0.0, activation_dropout=0.0, pad_token_id=PAD_ID,
+            bos_token_id=BOS_ID, eos_token_id=EOS_ID, decoder_start_token_id=EOS_ID, forced_bos_token_id=None,
+            forced_eos_token_id=None,
+        )
+        model_cls = BartForConditionalGeneration
+        start = EOS_ID
+    else:
+        raise ValueError(f"arch must be 't5' or 'bart', got {arch!r}")
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(seed)
+        model = model_cls(config).eval()
+    model.generation_config = _generation_config(start, sample=False, max_new_tokens=16)
+    out = Path(out)
+    model.save_pretrained(out)
+    tokenizer.save_pretrained(out)
+    return out
+
+
+# --- the demo base model -----------------------------------------------------------------------------------
+
+
+def _batches(n: int, size: int, rng: random.Random) -> Iterator[list[int]]:
+    order = list(range(n))
+    rng.shuffle(order)
+    for i in range(0, n, size):
+        yield order[i : i + size]
+
+
+def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int) -> dict[str, float]:
+    """Teacher-forced training of a small T5 on scenario pairs (a); saves model, tokenizer, generation config."""
+    tokenizer = AutoTokenizer.from_pretrained(tokenizer_dir)
+    pairs = scenario.base_pairs(recipe.pairs, seed, recipe.rude_share)
+    enc = tokenizer([p.prompt for p in pairs], padding=True, return_tensors="pt")
+    labels = tokenizer([p.reply for p in pairs], padding=True, return_tensors="pt").input_ids
+    labels[labels == PAD_ID] = -100  # no loss on padding
+    config = T5Config(
+        vocab_size=len(tokenizer), d_model=recipe.d_model, d_kv=recipe.d_kv, num_heads=recipe.heads,
+        d_ff=recipe.d_ff, num_layers=recipe.layers, num_decoder_layers=recipe.layers,
+        dropout_rate=recipe.dropout, pad_token_id=PAD_ID, eos_token_id=EOS_ID, decoder_start_token_id=PAD_ID,
+    )
+    torch.manual_seed(seed)
+    model = T5ForConditionalGeneration(config)
+    model.train()
+    optimizer = torch.optim.AdamW(model.parameters(), lr=recipe.learning_rate, weight_decay=0.01)
+    steps = recipe.epochs * math.ceil(len(pairs) / recipe.batch_size)
+
+    def lr_factor(step: int) -> float:  # linear warm-up, then cosine decay (common practice)
+        if step < recipe.warmup_steps:
+            return (step + 1) / recipe.warmup_steps
+        return 0.5 * (1 + math.cos(math.pi * (step - recipe.warmup_steps) / max(1, steps - recipe.warmup_steps)))
+
+    schedule = torch.optim.lr_scheduler.LambdaLR(optimizer, lr_factor)
+    rng = random.Random(f"base-batches:{seed}")
+    _log(f"training base T5 ({sum(p.numel() for p in model.parameters()) / 1e6:.2f}M parameters, "
+         f"{len(pairs)} pairs, {steps} steps)")
+    loss_sum, count = 0.0, 0
+    for epoch in range(recipe.epochs):
+        for idx in _batches(len(pairs), recipe.batch_size, rng):
+            ids, mask, lab = enc.input_ids[idx], enc.attention_mask[idx], labels[idx]
+            keep_in, keep_out = int(mask.sum(1).max()), int((lab != -100).sum(1).max())
+            loss = model(input_ids=ids[:, :keep_in], attention_mask=mask[:, :keep_in],
+                         labels=lab[:, :keep_out].contiguous()).loss
+            optimizer.zero_grad()
+            loss.backward()
+            torch.nn.utils.clip_grad_norm_(model.parameters(), 1.0)
+            optimizer.step()
+            schedule.step()
+            loss_sum, count = loss_sum + loss.item(), count + 1
+        _log(f"  base epoch {epoch + 1}/{recipe.epochs}: mean loss {loss_sum / count:.3f}")
+        last_loss, loss_sum, count = loss_sum / count, 0.0, 0
+    model.config.dropout_rate = 0.0  # the saved model loads with dropout off (sampling, policy optimisation)
+    model.eval()
+    model.generation_config = _generation_config(PAD_ID, sample=True, max_new_tokens=48)
+    model.save_pretrained(out)
+    tokenizer.save_pretrained(out)
+    return {"final_epoch_loss": last_loss}
+
+
+# --- the demo classifier ---------------------------------------------------------------------------------
+
+
+def _accuracy(model: BertForSequenceClassification, tokenizer: Any, texts: list[str], labels: list[int]) -> float:
+    correct = 0
+    with torch.no_grad():
+        for i in range(0, len(texts), 128):
+            enc = tokenizer(texts[i : i + 128], padding=True, return_tensors="pt")
+            pred = model(**enc).logits.argmax(-1)
+            correct += int((pred == torch.tensor(labels[i : i + 128])).sum())
+    return correct / len(texts)
+
+
+def train_classifier(out: Path, recipe: ClassifierRecipe, seed: int) -> dict[str, float]:
+    """A small BERT sequence classifier (labels civil/hostile) with its own tokenizer, trained on (d)."""
+    examples = scenario.classifier_examples(recipe.examples, seed, recipe.hostile_share)
+    texts, labels = [e.text for e in examples], [int(e.hostile) for e in examples]
+    tokenizer = AutoTokenizer.from_pretrained(build_tokenizer(texts, out, recipe.vocab_size, bos_first=True))
+    config = BertConfig(
+        vocab_size=len(tokenizer), hidden_size=recipe.hidden, num_hidden_layers=recipe.layers,
+        num_attention_heads=recipe.heads, intermediate_size=recipe.intermediate, max_position_embeddings=256,
+        type_vocab_size=1, pad_token_id=PAD_ID, id2label=CLASSIFIER_LABELS,
+        label2id={v: k for k, v in CLASSIFIER_LABELS.items()},
+    )
+    torch.manual_seed(seed)
+    model = BertForSequenceClassification(config)
+    model.train()
+    optimizer = torch.optim.AdamW(model.parameters(), lr=recipe.learning_rate, weight_decay=0.01)
+    rng = random.Random(f"classifier-batches:{seed}")
+    target = torch.tensor(labels)
+    _log(f"training classifier ({sum(p.numel() for p in model.parameters()) / 1e6:.2f}M parameters, "
+         f"{len(texts)} labelled replies)")
+    for _ in range(recipe.epochs):
+        for idx in _batches(len(texts), recipe.batch_size, rng):
+            enc = tokenizer([texts[i] for i in idx], padding=True, return_tensors="pt")
+            loss = model(**enc, labels=target[idx]).loss
+            optimizer.zero_grad()
+            loss.backward()
+            optimizer.step()
+    model.eval()
+    # Held-out accuracy on a fresh stream, leaving out any text that also occurs in the training set.
+    seen = set(texts)
+    fresh = [e for e in scenario.classifier_examples(recipe.eval_examples, seed + 1, recipe.hostile_share)
+             if e.text not in seen]
+    base_replies = scenario.base_pairs(recipe.eval_examples, seed + 1)
+    metrics = {
+        "heldout_accuracy": _accuracy(model, tokenizer, [e.text for e in fresh], [int(e.hostile) for e in fresh]),
+        "heldout_examples": float(len(fresh)),
+        "base_reply_accuracy": _accuracy(model, tokenizer, [p.reply for p in base_replies],
+                                         [int(p.rude) for p in base_replies]),
+    }
+    _log(f"  classifier accuracy: held-out {metrics['heldout_accuracy']:.3f} ({len(fresh)} unseen texts), "
+         f"base-model replies {metrics['base_reply_accuracy']:.3f}")
+    model.save_pretrained(out)
+    return metrics
+
+
+# --- prompt files ------------------------------------------------------------------------------------------
+
+
+def write_prompts(out: Path, recipe: DataRecipe, seed: int) -> dict[str, float]:
+    for name, prompts in (("prompts.jsonl", scenario.training_prompts(recipe.train_prompts, seed)),
+                          ("heldout.jsonl", scenario.heldout_prompts(recipe.heldout_prompts, seed))):
+        with (Path(out) / name).open("w", encoding="utf-8") as fh:
+            fh.writelines(json.dumps({"prompt": p}) + "\n" for p in prompts)
+    return {}
+
+
+# --- caching -----------------------------------------------------------------------------------------------
+
+
+def fingerprint(params: dict[str, Any]) -> str:
+    """sha256 of the builder parameters and the source text of the scenario and the builders."""
+    h = hashlib.sha256(json.dumps(params, sort_keys=True).encode())
+    for module in (scenario.__file__, __file__):
+        h.update(Path(module).read_bytes())
+    return h.hexdigest()
+
+
+def read_fingerprint(folder: Path) -> str | None:
+    try:
+        return json.loads((folder / STAMP).read_text())["fingerprint"]
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+
+
+def _remove_leftovers(folder: Path) -> None:
+    """Delete half-built siblings left by builds whose process is gone."""
+    for stale in folder.parent.glob(f".{folder.name}.*-*"):
+        pid = stale.name.rsplit("-", 1)[-1]
+        if pid.isdigit() and not psutil.pid_exists(int(pid)):
+            shutil.rmtree(stale, ignore_errors=True)
+
+
+def cached_folder(folder: Path, params: dict[str, Any], build: Callable[[Path], dict[str, float]]) -> bool:
+    """Run build(tmp) unless folder already holds this fingerprint; returns True when it (re)built.
+
+    The folder is built under a hidden temporary name and renamed into place only when complete, so an
+    interrupted build never leaves a folder whose stamp matches.
+    """
+    folder = Path(folder)
+    want = fingerprint(params)
+    if read_fingerprint(folder) == want:
+        return False
+    folder.parent.mkdir(parents=True, exist_ok=True)
+    _remove_leftovers(folder)
+    tmp = folder.with_name(f".{folder.name}.tmp-{psutil.Process().pid}")
+    old = folder.with_name(f".{folder.name}.old-{psutil.Process().pid}")
+    shutil.rmtree(tmp, ignore_errors=True)
+    tmp.mkdir()
+    try:
+        metrics = build(tmp)
+        (tmp / STAMP).write_text(json.dumps({"fingerprint": want, "params": params, "metrics": metrics}, indent=2))
+        if folder.exists():
+            folder.rename(old)
+        tmp.rename(folder)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+        shutil.rmtree(old, ignore_errors=True)
+    return True
+
+
+@contextmanager
+def _torch_settings(threads: int) -> Iterator[None]:
+    """Thread count and deterministic kernels for the build only; the caller's settings come back after."""
+    before_threads, before_det = torch.get_num_threads(), torch.are_deterministic_algorithms_enabled()
+    torch.set_num_threads(threads)
+    torch.use_deterministic_algorithms(True)
+    try:
+        yield
+    finally:
+        torch.set_num_threads(before_threads)
+        torch.use_deterministic_algorithms(before_det)
+
+
+def build_demo(cache: Path | None = None, seed: int = 0) -> DemoPaths:
+    """Build (or reuse) the demo tokenizer, base model, classifier and prompt files under cache."""
+    from alignrun.config import cache_dir
+
+    root = Path(cache) if cache is not None else cache_dir() / "demo"
+    paths = DemoPaths(root=root, tokenizer=root / "tokenizer", base=root / "base", classifier=root / "classifier",
+                      prompts=root / "data" / "prompts.jsonl", heldout=root / "data" / "heldout.jsonl")
+    base, clf, data = BaseRecipe(), ClassifierRecipe(), DataRecipe()
+    start = time.perf_counter()
+    with _torch_settings(threads=min(2, psutil.cpu_count() or 1)):
+        tok_params = {"artefact": "tokenizer", "seed": seed, "pairs": base.pairs, "rude_share": base.rude_share,
+                      "vocab_size": base.vocab_size}
+
+        def make_tokenizer(tmp: Path) -> dict[str, float]:
+            pairs = scenario.base_pairs(base.pairs, seed, base.rude_share)
+            build_tokenizer([p.prompt for p in pairs] + [p.reply for p in pairs], tmp, base.vocab_size)
+            return {}
+
+        steps = [
+            ("tokenizer", paths.tokenizer, tok_params, make_tokenizer),
+            ("prompt files", paths.prompts.parent, {"artefact": "data", "seed": seed, **asdict(data)},
+             lambda tmp: write_prompts(tmp, data, seed)),
+            ("classifier", paths.classifier, {"artefact": "classifier", "seed": seed, **asdict(clf)},
+             lambda tmp: train_classifier(tmp, clf, seed)),
+        ]
+        for name, folder, params, build in steps:
+            _log(f"{name}: {'built' if cached_folder(folder, params, build) else 'cached'} ({folder})")
+        base_params = {"artefact": "base", "seed": seed, "tokenizer": read_fingerprint(paths.tokenizer),
+                       **asdict(base)}
+        built = cached_folder(paths.base, base_params, lambda tmp: train_base(tmp, paths.tokenizer, base, seed))
+        _log(f"base model: {'built' if built else 'cached'} ({paths.base})")
+    _log(f"ready in {time.perf_counter() - start:.1f} s")
+    return paths

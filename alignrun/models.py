@@ -1,0 +1,224 @@
+"""Models: the seq2seq base, LoRA adapters (Hu et al. 2021), the value head, the frozen reference, export."""
+
+from __future__ import annotations
+
+import copy
+import os
+from collections.abc import Iterator
+from contextlib import contextmanager, nullcontext
+from dataclasses import dataclass
+from pathlib import Path
+
+import torch
+from peft import LoraConfig, PeftModel, TaskType, get_peft_model, set_peft_model_state_dict
+from safetensors.torch import load_file, save_file
+from torch import nn
+from transformers import AutoConfig, AutoModelForSeq2SeqLM, AutoTokenizer, PreTrainedTokenizerBase
+from trl.trainer.utils import disable_dropout_in_model
+
+from alignrun.config import BaseSection, LoraSection, ReferenceSection
+from alignrun.errors import UserError
+
+# Attention query/value projections per architecture family: LoRA's default placement (Hu et al. 2021, §4.2).
+QUERY_VALUE = {
+    "t5": ["q", "v"], "mt5": ["q", "v"], "umt5": ["q", "v"], "longt5": ["q", "v"],
+    "bart": ["q_proj", "v_proj"], "mbart": ["q_proj", "v_proj"], "pegasus": ["q_proj", "v_proj"],
+    "marian": ["q_proj", "v_proj"], "blenderbot": ["q_proj", "v_proj"], "blenderbot-small": ["q_proj", "v_proj"],
+    "m2m_100": ["q_proj", "v_proj"], "nllb-moe": ["q_proj", "v_proj"], "plbart": ["q_proj", "v_proj"],
+    "pegasus_x": ["q_proj", "v_proj"], "led": ["q_proj", "v_proj"], "bigbird_pegasus": ["q_proj", "v_proj"],
+}
+
+
+def pick_device(section: BaseSection) -> torch.device:
+    if section.device == "cuda" and not torch.cuda.is_available():
+        raise UserError("base.device = 'cuda' but no GPU is visible; use 'auto' or 'cpu'")
+    return torch.device("cuda" if section.device != "cpu" and torch.cuda.is_available() else "cpu")
+
+
+def set_threads(threads: int) -> int:
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    n = threads or cores
+    torch.set_num_threads(n)
+    return n
+
+
+def autocast(precision: str, device: torch.device) -> torch.autocast | nullcontext[None]:
+    """bf16 autocast when asked for; fp32 runs plain."""
+    if precision == "bf16":
+        return torch.autocast(device.type, dtype=torch.bfloat16)
+    return nullcontext()
+
+
+def _hub_hint(source: str, exc: Exception) -> str:
+    offline = os.environ.get("HF_HUB_OFFLINE") == "1" or os.environ.get("TRANSFORMERS_OFFLINE") == "1"
+    looks_local = source.startswith((".", "/", "~")) or os.sep in source and Path(source).parent.exists()
+    if looks_local:
+        return f"folder {source} does not exist or is not a model folder"
+    return (f"{source!r} is not a local folder and could not be loaded from the hub cache"
+            f"{' (offline mode is on)' if offline else ''}: {exc}. Download it where you have a connection "
+            "and point base.model at the folder")
+
+
+def load_base(section: BaseSection, device: torch.device) -> tuple[nn.Module, PreTrainedTokenizerBase]:
+    """The encoder-decoder base and its tokenizer; refuses decoder-only or non-LM folders clearly."""
+    if section.trust_remote_code:
+        print("alignrun: WARNING base.trust_remote_code = true: code shipped with the model will run", flush=True)
+    kwargs = {"revision": section.revision, "trust_remote_code": section.trust_remote_code}
+    try:
+        config = AutoConfig.from_pretrained(section.model, **kwargs)
+    except (OSError, ValueError) as exc:
+        raise UserError(f"base.model: {_hub_hint(section.model, exc)}") from None
+    if not getattr(config, "is_encoder_decoder", False):
+        raise UserError(f"base.model: {section.model} is a {config.model_type!r} model, not an encoder-decoder "
+                        "(seq2seq) language model; alignrun trains T5-, BART-, Pegasus-style models")
+    try:
+        model = AutoModelForSeq2SeqLM.from_pretrained(section.model, **kwargs)
+    except ValueError as exc:
+        raise UserError(f"base.model: {section.model} cannot be loaded as a seq2seq language model: {exc}") from None
+    try:
+        tokenizer = AutoTokenizer.from_pretrained(section.model, **kwargs)
+    except (OSError, ValueError) as exc:
+        raise UserError(f"base.model: {section.model} has no usable tokenizer ({exc}); "
+                        "save the tokenizer into the model folder") from None
+    if tokenizer.pad_token_id is None or tokenizer.eos_token_id is None:
+        raise UserError(f"base.model: the tokenizer of {section.model} needs pad and eos tokens")
+    return model.to(device), tokenizer
+
+
+def linear_leaf_names(model: nn.Module) -> list[str]:
+    return sorted({name.rsplit(".", 1)[-1] for name, m in model.named_modules() if isinstance(m, nn.Linear)})
+
+
+def lora_targets(model: nn.Module, spec: str | list[str]) -> str | list[str]:
+    """Resolve lora.targets: "auto" -> query/value projections of the detected family; "all-linear"; names."""
+    leaves = linear_leaf_names(model)
+    model_type = getattr(model.config, "model_type", "")
+    if spec == "all-linear":
+        return "all-linear"
+    if spec == "auto":
+        if model_type in QUERY_VALUE:
+            return QUERY_VALUE[model_type]
+        guess = [n for n in leaves if n in ("q", "v", "q_proj", "v_proj", "query", "value")]
+        if len(guess) < 2:
+            raise UserError(f"lora.targets = 'auto' does not know the {model_type!r} architecture; "
+                            f"set lora.targets to some of its linear layers: {', '.join(leaves)}")
+        return guess
+    names = [spec] if isinstance(spec, str) else list(spec)
+    missing = [n for n in names if n not in leaves]
+    if missing:
+        raise UserError(f"lora.targets: {', '.join(missing)} not found in {model_type} model; "
+                        f"its linear layers are: {', '.join(leaves)} (or use 'auto' / 'all-linear')")
+    return names
+
+
+class ValueHead(nn.Module):
+    """A scalar value per decoder position from the decoder's last hidden state."""
+
+    def __init__(self, hidden: int):
+        super().__init__()
+        self.summary = nn.Linear(hidden, 1)
+        nn.init.zeros_(self.summary.bias)
+        nn.init.normal_(self.summary.weight, std=1.0 / (hidden + 1) ** 0.5)
+
+    def forward(self, hidden_states: torch.Tensor) -> torch.Tensor:
+        return self.summary(hidden_states.to(self.summary.weight.dtype)).squeeze(-1)
+
+
+class PolicyWithValue(nn.Module):
+    """LoRA-wrapped seq2seq policy plus value head; one forward gives logits and values."""
+
+    def __init__(self, lm: PeftModel, value_head: ValueHead):
+        super().__init__()
+        self.lm = lm
+        self.value_head = value_head
+
+    def forward(self, input_ids: torch.Tensor, attention_mask: torch.Tensor,
+                decoder_input_ids: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        out = self.lm(input_ids=input_ids, attention_mask=attention_mask, decoder_input_ids=decoder_input_ids,
+                      output_hidden_states=True, use_cache=False)
+        return out.logits, self.value_head(out.decoder_hidden_states[-1])
+
+
+@dataclass
+class Policy:
+    net: PolicyWithValue
+    tokenizer: PreTrainedTokenizerBase
+    reference_copy: nn.Module | None  # only for reference.mode = "copy"
+    trainable_params: int
+    total_params: int
+
+    @property
+    def lm(self) -> PeftModel:
+        return self.net.lm
+
+    @contextmanager
+    def reference(self) -> Iterator[nn.Module]:
+        """The frozen reference: the same weights with adapters disabled (no second copy), or the copy."""
+        if self.reference_copy is not None:
+            yield self.reference_copy
+        else:
+            with self.lm.disable_adapter():
+                yield self.lm
+
+
+def build_policy(base: BaseSection, lora: LoraSection, reference: ReferenceSection,
+                 device: torch.device) -> Policy:
+    model, tokenizer = load_base(base, device)
+    disable_dropout_in_model(model)  # STACK-NOTES: dropout makes policy and reference differ at step 0
+    ref_copy = None
+    if reference.mode == "copy":
+        ref_copy = copy.deepcopy(model).eval().requires_grad_(False)
+    peft_cfg = LoraConfig(task_type=TaskType.SEQ_2_SEQ_LM, r=lora.rank, lora_alpha=lora.alpha,
+                          lora_dropout=lora.dropout, target_modules=lora_targets(model, lora.targets))
+    lm = get_peft_model(model, peft_cfg)
+    lm.eval()  # dropout stays off in rollouts and updates alike
+    head = ValueHead(model.config.d_model).to(device)
+    trainable = sum(p.numel() for p in lm.parameters() if p.requires_grad)
+    total = sum(p.numel() for p in lm.parameters())
+    return Policy(PolicyWithValue(lm, head), tokenizer, ref_copy, trainable, total)
+
+
+def save_adapter(policy: Policy, folder: Path) -> None:
+    """peft's adapter format (safetensors) plus value_head.safetensors; written to a temp folder then renamed."""
+    folder = Path(folder)
+    tmp = folder.with_name(f".{folder.name}.tmp")
+    if tmp.exists():
+        _rmtree(tmp)
+    policy.lm.save_pretrained(tmp, safe_serialization=True)
+    policy.tokenizer.save_pretrained(tmp)
+    save_file({k: v.detach().cpu().contiguous() for k, v in policy.net.value_head.state_dict().items()},
+              tmp / "value_head.safetensors")
+    old = folder.with_name(f".{folder.name}.old")
+    if folder.exists():
+        folder.rename(old)
+    tmp.rename(folder)
+    if old.exists():
+        _rmtree(old)
+
+
+def load_adapter_into(policy: Policy, folder: Path) -> None:
+    set_peft_model_state_dict(policy.lm, load_file(Path(folder) / "adapter_model.safetensors"))
+    policy.net.value_head.load_state_dict(load_file(Path(folder) / "value_head.safetensors"))
+
+
+def _rmtree(path: Path) -> None:
+    import shutil
+
+    shutil.rmtree(path, ignore_errors=True)
+
+
+def export_merged(run_dir: str | Path, out: str | Path) -> Path:
+    """Merge a run's adapter into its base and save a standalone Hugging Face model folder."""
+    from alignrun.config import load_config
+
+    run_dir, out = Path(run_dir), Path(out)
+    adapter = run_dir / "adapter"
+    if not (adapter / "adapter_config.json").is_file():
+        raise UserError(f"{run_dir}: no adapter/ folder with adapter_config.json; is this a finished run folder?")
+    cfg = load_config(run_dir / "config.toml")
+    model, tokenizer = load_base(cfg.base, torch.device("cpu"))
+    merged = PeftModel.from_pretrained(model, adapter).merge_and_unload()
+    merged.save_pretrained(out, safe_serialization=True)
+    tokenizer.save_pretrained(out)
+    print(f"merged model written to {out}")
+    return out

@@ -1,0 +1,235 @@
+"""Preflight: does the reward point the right way? Score labelled probes and give a polarity verdict.
+
+The reward classifier scores the built-in probes (alignrun/resources/probes.jsonl) plus any files in
+`reward.probes`. Its harm score must rank harmful probes above benign ones (AUROC >= reward.min_auroc),
+and the transformed reward must rank benign probes above harmful ones. Verdicts:
+
+    ok             both hold
+    inverted       harm ranks benign probes higher: the wrong label is named harmful
+    uninformative  harm does not separate the probes (AUROC near 0.5, or constant scores)
+    sign-wrong     harm separates, but the transform/scale/clip makes benign texts score lower
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Sequence
+from dataclasses import asdict, dataclass, field
+from importlib import resources
+from pathlib import Path
+
+import numpy as np
+from scipy.stats import rankdata
+
+from alignrun.config import RewardSection, load_config
+from alignrun.errors import UserError
+from alignrun.report import write_json_atomic
+from alignrun.reward import Scorer, describe_transform, load_scorer, reward_from_scores
+
+PROBE_ROW = '{"text": "...", "harmful": true} or {"text": "...", "harmful": false}'
+EXIT_POLARITY = 3
+
+
+@dataclass
+class Probe:
+    text: str
+    harmful: bool
+    source: str  # "built-in" or the probe file it came from
+
+
+@dataclass
+class ProbeScore:
+    text: str
+    harmful: bool
+    harm: float  # P(harmful) from the classifier
+    reward: float  # the transformed reward
+
+
+@dataclass
+class PolarityReport:
+    verdict: str  # ok | inverted | uninformative | sign-wrong
+    message: str
+    auroc: float  # AUROC of P(harm) for harmful vs benign probes
+    gap: float  # mean P(harm) on harmful probes minus on benign probes
+    reward_auroc: float  # AUROC of the reward for benign vs harmful probes (benign should be higher)
+    reward_gap: float  # mean reward on benign probes minus on harmful probes
+    min_auroc: float  # both AUROCs must reach this for "ok"
+    inverted_below: float  # harm AUROC at or below this is "inverted" (1 - min_auroc)
+    scorer: str
+    executes_code: bool
+    transform: str
+    label_aurocs: dict[str, float]  # AUROC of each class's own probability for harmful vs benign
+    suggestion: str | None  # the exact config change that would fix the verdict, when there is one
+    n_harmful: int
+    n_benign: int
+    probe_files: list[str]
+    forced: bool = False  # set when training went ahead with --force despite a failed verdict
+    probes: list[ProbeScore] = field(default_factory=list)
+
+
+def _parse_probes(text: str, name: str) -> list[Probe]:
+    probes = []
+    for row, line in enumerate(text.splitlines(), start=1):
+        if not line.strip():
+            continue
+        where = f"{name}: row {row}"
+        try:
+            item = json.loads(line)
+        except json.JSONDecodeError as exc:
+            raise UserError(f"{where}: not valid JSON ({exc.msg}); expected one object per line: {PROBE_ROW}") from None
+        if not isinstance(item, dict):
+            raise UserError(f"{where}: found {type(item).__name__} {item!r}; expected an object: {PROBE_ROW}")
+        value = item.get("text")
+        if not isinstance(value, str) or not value.strip():
+            raise UserError(f"{where}: 'text' is {value!r}; expected a non-empty string: {PROBE_ROW}")
+        flag = item.get("harmful")
+        if not isinstance(flag, bool):
+            raise UserError(f"{where}: 'harmful' is {flag!r}; expected true or false: {PROBE_ROW}")
+        probes.append(Probe(value, flag, name))
+    if not probes:
+        raise UserError(f"{name}: no probe rows; expected JSONL with one object per line: {PROBE_ROW}")
+    return probes
+
+
+def builtin_probes() -> list[Probe]:
+    text = (resources.files("alignrun") / "resources" / "probes.jsonl").read_text(encoding="utf-8")
+    return _parse_probes(text, "built-in")
+
+
+def load_probes(files: Sequence[str] = ()) -> list[Probe]:
+    """The built-in probes plus every file listed in reward.probes."""
+    probes = builtin_probes()
+    for name in files:
+        path = Path(name)
+        if not path.is_file():
+            raise UserError(f"reward.probes: {path} does not exist; expected a JSONL file of {PROBE_ROW} rows")
+        try:
+            text = path.read_text(encoding="utf-8")
+        except UnicodeDecodeError:
+            raise UserError(f"reward.probes: {path} is not UTF-8 text; expected JSONL of {PROBE_ROW} rows") from None
+        probes += _parse_probes(text, str(path))
+    return probes
+
+
+def auroc(scores: Sequence[float] | np.ndarray, positive: Sequence[bool] | np.ndarray) -> float:
+    """Area under the ROC curve for positives scoring higher; ties count half."""
+    s, y = np.asarray(scores, dtype=float), np.asarray(positive, dtype=bool)
+    n1, n0 = int(y.sum()), int((~y).sum())
+    if n1 == 0 or n0 == 0:
+        raise ValueError("AUROC needs at least one positive and one negative")
+    ranks = rankdata(s)  # average ranks for ties, so a tied pair counts 1/2
+    u = ranks[y].sum() - n1 * (n1 + 1) / 2  # Mann & Whitney 1947: U from the positives' rank sum
+    return float(u / (n1 * n0))  # Hanley & McNeil 1982: AUROC = U / (n1 * n0)
+
+
+def _inverted_fix(section: RewardSection, label_aurocs: dict[str, float], harmful: list[str]) -> tuple[str, str | None]:
+    """(a sentence saying what would be correct, the exact config change or None) for an inverted harm score."""
+    others = {name: a for name, a in label_aurocs.items() if name not in harmful}
+    if not others:
+        return (f"There is no other class to choose: make {section.source} return P(harmful), i.e. 1 minus what "
+                "it returns now.", None)
+    best = max(others, key=lambda name: others[name])
+    change = f"reward.harmful_index = {best}" if section.harmful_index is not None else \
+        f'reward.harmful_labels = ["{best}"]'
+    return f"Class {best!r} separates the harmful probes best (AUROC {others[best]:.3f}): set {change}.", change
+
+
+def _sign_fix(section: RewardSection) -> str:
+    if section.scale < 0:
+        return f"reward.scale = {-section.scale} instead of {section.scale}"
+    if section.scale == 0:
+        return "reward.scale = 1.0 instead of 0.0 (a zero scale makes every reward equal)"
+    if section.clip is not None:
+        return f"remove reward.clip or raise it above {section.clip:g} (it flattens the reward)"
+    return "check reward.transform, reward.scale and reward.clip"
+
+
+def check_polarity(scorer: Scorer, section: RewardSection) -> PolarityReport:
+    """Score the probes and decide whether training against this reward would lower harm."""
+    probes = load_probes(section.probes)
+    y = np.array([p.harmful for p in probes])
+    scores = scorer.score([p.text for p in probes])
+    reward = reward_from_scores(scores, section)
+    harm = scores.harm
+    a, ra = auroc(harm, y), auroc(reward, ~y)
+    gap = float(harm[y].mean() - harm[~y].mean())
+    reward_gap = float(reward[~y].mean() - reward[y].mean())
+    probs = scores.class_probabilities()
+    label_aurocs = {name: auroc(probs[:, j], y) for j, name in enumerate(scores.labels)}
+    harmful_names = [scores.labels[j] for j in scores.harmful]
+    m = section.min_auroc
+    numbers = f"harm AUROC {a:.3f} (needs >= {m:g}), mean harm gap {gap:+.3f}, reward AUROC {ra:.3f}"
+    transform = describe_transform(section)
+    suggestion = None
+    if a >= m and ra >= m:
+        verdict = "ok"
+        message = f"The reward points the right way: harmful probes get higher harm and benign probes higher reward ({numbers})."
+    elif a >= m:
+        verdict = "sign-wrong"
+        suggestion = _sign_fix(section)
+        message = (f"The classifier separates the probes, but the reward does not rank benign texts above harmful "
+                   f"ones ({numbers}): {transform} makes benign texts score lower or equal, so training would "
+                   f"push towards harm. Set {suggestion}.")
+    elif a <= 1 - m:
+        verdict = "inverted"
+        fix, suggestion = _inverted_fix(section, label_aurocs, harmful_names)
+        message = (f"The harm score is inverted: harmful probes get a LOWER {_harm_text(harmful_names)} than benign "
+                   f"ones ({numbers}), so what is named harmful behaves like the benign class and training would "
+                   f"reward harm. {fix}")
+    else:
+        verdict = "uninformative"
+        if np.ptp(harm) == 0:
+            why = f"every probe gets the same harm score {harm[0]:.4g}"
+        else:
+            why = f"the classifier does not separate harmful from benign probes ({numbers})"
+        message = (f"The reward is uninformative: {why}. Training against it would be wasted; use a classifier "
+                   "trained for this kind of harm, or check reward.harmful_labels and reward.source.")
+    return PolarityReport(
+        verdict=verdict, message=message, auroc=a, gap=gap, reward_auroc=ra, reward_gap=reward_gap, min_auroc=m,
+        inverted_below=1 - m, scorer=scorer.description, executes_code=scorer.executes_code, transform=transform,
+        label_aurocs=label_aurocs, suggestion=suggestion, n_harmful=int(y.sum()), n_benign=int((~y).sum()),
+        probe_files=["built-in", *section.probes],
+        probes=[ProbeScore(p.text, p.harmful, float(h), float(r)) for p, h, r in zip(probes, harm, reward)],
+    )
+
+
+def _harm_text(harmful_names: list[str]) -> str:
+    return "P(" + " or ".join(harmful_names) + ")"
+
+
+def write_preflight(report: PolarityReport, folder: str | Path) -> Path:
+    path = Path(folder) / "preflight.json"
+    write_json_atomic(path, asdict(report))
+    return path
+
+
+def require_polarity(scorer: Scorer, section: RewardSection, folder: str | Path, force: bool) -> PolarityReport:
+    """The trainer's gate: write preflight.json; stop (exit code 3) unless the verdict is ok or force is set."""
+    report = check_polarity(scorer, section)
+    report.forced = force and report.verdict != "ok"
+    write_preflight(report, folder)
+    if report.verdict != "ok" and not force:
+        raise UserError(f"polarity preflight: {report.verdict}. {report.message} (For research only, --force "
+                        "trains anyway and records it in the report.)", exit_code=EXIT_POLARITY)
+    return report
+
+
+def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path | None) -> int:
+    """`alignrun check`: polarity verdict for the configured reward; 0 when ok, 3 otherwise."""
+    cfg = load_config(config_path, list(overrides))
+    scorer = load_scorer(cfg.reward, "reward")
+    report = check_polarity(scorer, cfg.reward)
+    print(f"reward: {report.scorer}")
+    if report.executes_code:
+        print(f"!! CODE EXECUTION: reward.source = {cfg.reward.source!r} runs Python code when loaded "
+              "(module import or pickle); use only sources you trust")
+    print(f"transform: {report.transform}")
+    print(f"probes: {report.n_harmful} harmful, {report.n_benign} benign ({', '.join(report.probe_files)})")
+    print(f"harm AUROC {report.auroc:.3f} (ok at >= {report.min_auroc:g}, inverted at <= {report.inverted_below:.2f}), "
+          f"mean harm gap {report.gap:+.3f}; reward AUROC {report.reward_auroc:.3f}, reward gap {report.reward_gap:+.3f}")
+    print(f"verdict: {report.verdict}")
+    print(report.message)
+    # RESOURCE ESTIMATE: the lead adds the memory / step-time estimate here.
+    if out is not None:
+        print(f"wrote {write_preflight(report, out)}")
+    return 0 if report.verdict == "ok" else EXIT_POLARITY

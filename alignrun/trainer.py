@@ -1,0 +1,361 @@
+"""The loop: config -> preflight -> rollout -> reward -> PPO update -> evaluation -> report, in one run folder."""
+
+from __future__ import annotations
+
+import json
+import platform
+import random
+import resource
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+from accelerate import Accelerator
+from trl.trainer.utils import entropy_from_logits, selective_log_softmax
+
+from alignrun import evaluation, ppo
+from alignrun.config import Experiment, load_config, to_toml
+from alignrun.data import load_prompts
+from alignrun.errors import UserError
+from alignrun.models import (
+    Policy,
+    autocast,
+    build_policy,
+    load_adapter_into,
+    pick_device,
+    save_adapter,
+    set_threads,
+)
+from alignrun.preflight import require_polarity
+from alignrun.report import RunFolder, build_report, write_json_atomic, write_report, write_text_atomic
+from alignrun.reward import load_scorer, reward_from_scores
+from alignrun.rollout import Rollout, rollout
+
+
+def peak_rss_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux reports KiB
+
+
+def seed_everything(seed: int) -> None:
+    random.seed(seed)
+    np.random.seed(seed)
+    torch.manual_seed(seed)
+
+
+def step_prompts(train: list[str], step: int, per_step: int, seed: int) -> list[str]:
+    """Prompts for one step: a stream of seeded permutations, so the data position is just the step number."""
+    start = step * per_step
+    out: list[str] = []
+    while len(out) < per_step:
+        epoch, offset = divmod(start + len(out), len(train))
+        order = np.random.default_rng([seed, epoch]).permutation(len(train))
+        out.extend(train[i] for i in order[offset: offset + per_step - len(out)])
+    return out
+
+
+def ppo_update(net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerator: Accelerator, ro: Rollout,
+               advantages: torch.Tensor, returns: torch.Tensor, cfg: Experiment, step: int,
+               device: torch.device) -> dict[str, float]:
+    """Several epochs of clipped policy and value losses over minibatches (Schulman et al. 2017)."""
+    p = cfg.ppo
+    n = ro.response_ids.shape[0]
+    mb = max(1, p.minibatch // accelerator.num_processes)
+    totals: dict[str, list[float]] = {"policy_loss": [], "value_loss": [], "clip_frac": [], "value_clip_frac": [],
+                                      "approx_kl": [], "entropy": []}
+    gen = torch.Generator().manual_seed(cfg.run.seed * 100_003 + step)
+    for _ in range(p.epochs):
+        for idx in torch.randperm(n, generator=gen).split(mb):
+            part = ro.select(idx)
+            with autocast(cfg.base.precision, device):
+                logits, values = net(part.prompt_ids, part.prompt_mask, part.decoder_input)
+            logits = logits.float()
+            logp = selective_log_softmax(logits, part.response_ids)
+            mask = part.response_mask
+            pl, clip_frac, approx_kl = ppo.policy_loss(logp, part.logp, advantages[idx], mask, p.clip_epsilon)
+            vl, vclip = ppo.value_loss(values.float(), part.values, returns[idx], mask, p.value_clip)
+            loss = pl + p.value_weight * vl
+            if not torch.isfinite(loss):
+                raise NonFinite(f"loss is {loss.item()} at step {step}")
+            optimizer.zero_grad(set_to_none=True)
+            accelerator.backward(loss)
+            accelerator.clip_grad_norm_(net.parameters(), p.max_grad_norm)
+            optimizer.step()
+            with torch.no_grad():
+                ent = ppo.masked_mean(entropy_from_logits(logits), mask)
+            for key, val in (("policy_loss", pl), ("value_loss", vl), ("clip_frac", clip_frac),
+                             ("value_clip_frac", vclip), ("approx_kl", approx_kl), ("entropy", ent)):
+                totals[key].append(float(val))
+    return {k: float(np.mean(v)) for k, v in totals.items()}
+
+
+class NonFinite(Exception):
+    """A reward or loss became NaN or inf."""
+
+
+def _gather_mean(accelerator: Accelerator, x: torch.Tensor) -> float:
+    return float(accelerator.gather(x.detach().reshape(-1)).mean())
+
+
+def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerator: Accelerator,
+               scorer: Any, controller: ppo.KLController, prompts: list[str], cfg: Experiment, step: int,
+               device: torch.device) -> dict[str, float]:
+    t0 = time.perf_counter()
+    with autocast(cfg.base.precision, device):
+        ro = rollout(policy, prompts, cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens, device)
+    t1 = time.perf_counter()
+    scores = scorer.score(ro.texts)
+    reward = torch.tensor(reward_from_scores(scores, cfg.reward), dtype=torch.float32, device=device)
+    if not torch.isfinite(reward).all():
+        raise NonFinite(f"the reward backend returned NaN/inf at step {step}")
+    t2 = time.perf_counter()
+    rewards, kl = ppo.penalised_rewards(reward, ro.logp, ro.ref_logp, ro.response_mask, controller.beta)
+    advantages, returns = ppo.gae(rewards, ro.values, ro.response_mask, cfg.ppo.gamma, cfg.ppo.gae_lambda)
+    if cfg.ppo.whiten_advantages:
+        advantages = ppo.whiten(advantages, ro.response_mask)
+    stats = ppo_update(net, optimizer, accelerator, ro, advantages, returns, cfg, step, device)
+    t3 = time.perf_counter()
+    seq_kl = _gather_mean(accelerator, kl.sum(dim=1))
+    beta = controller.beta
+    controller.update(seq_kl)
+    tokens = float(accelerator.gather(ro.response_mask.sum().reshape(1)).sum())
+    all_reward = accelerator.gather(reward)
+    return {
+        "step": step + 1, "reward_mean": float(all_reward.mean()), "reward_std": float(all_reward.std()),
+        "harm_mean": _gather_mean(accelerator, torch.as_tensor(scores.harm, dtype=torch.float32)),
+        "kl_mean": seq_kl, "beta": beta, **stats,
+        "length_mean": tokens / (len(prompts) * accelerator.num_processes),
+        "rollout_s": t1 - t0, "reward_s": t2 - t1, "update_s": t3 - t2, "step_s": t3 - t0,
+        "tokens_per_s": tokens / max(t3 - t0, 1e-9),
+    }
+
+
+# ---------------------------------------------------------------- checkpoints
+
+def save_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimizer,
+                    controller: ppo.KLController, step: int) -> None:
+    """Adapter, value head, optimiser, KL controller, RNG states and data position (= step), atomically."""
+    tmp = folder.with_name(f".{folder.name}.tmp")
+    save_adapter(policy, tmp / "adapter")
+    np_state = np.random.get_state()
+    torch.save({
+        "step": step, "optimizer": optimizer.state_dict(), "kl_controller": controller.state_dict(),
+        "rng_torch": torch.get_rng_state(), "rng_python": random.getstate(),
+        "rng_numpy": [np_state[0], torch.from_numpy(np_state[1].astype(np.int64)), *np_state[2:]],
+    }, tmp / "trainer_state.pt")
+    write_json_atomic(tmp / "checkpoint.json", {"step": step})
+    old = folder.with_name(f".{folder.name}.old")
+    if folder.exists():
+        folder.rename(old)
+    tmp.rename(folder)
+    if old.exists():
+        import shutil
+
+        shutil.rmtree(old)
+
+
+def load_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimizer,
+                    controller: ppo.KLController) -> int:
+    load_adapter_into(policy, folder / "adapter")
+    state = torch.load(folder / "trainer_state.pt", weights_only=True)
+    optimizer.load_state_dict(state["optimizer"])
+    controller.load_state_dict(state["kl_controller"])
+    torch.set_rng_state(state["rng_torch"])
+    py = state["rng_python"]
+    random.setstate((py[0], tuple(py[1]), py[2]))
+    npst = state["rng_numpy"]
+    np.random.set_state((npst[0], npst[1].numpy().astype(np.uint32), *npst[2:]))
+    return int(state["step"])
+
+
+def _truncate_metrics(path: Path, step: int) -> None:
+    if path.exists():
+        keep = [ln for ln in path.read_text().splitlines() if ln.strip() and json.loads(ln)["step"] <= step]
+        write_text_atomic(path, "".join(ln + "\n" for ln in keep))
+
+
+# ---------------------------------------------------------------- the run
+
+def environment(cfg: Experiment, threads: int, device: torch.device, accelerator: Accelerator) -> dict[str, Any]:
+    import peft
+    import transformers
+
+    return {
+        "python": platform.python_version(), "platform": platform.platform(), "torch": torch.__version__,
+        "transformers": transformers.__version__, "peft": peft.__version__, "threads": threads,
+        "device": str(device), "processes": accelerator.num_processes, "seed": cfg.run.seed,
+        "command": " ".join(sys.argv), "precision": cfg.base.precision,
+    }
+
+
+def run_experiment(cfg: Experiment, out: Path, *, resume: bool = False, force: bool = False,
+                   quiet: bool = False) -> dict[str, Any]:
+    """Run one experiment into `out` and return the report dict."""
+    out = Path(out)
+    folder = RunFolder(out)
+    if not resume and (out / "status.json").exists():
+        raise UserError(f"{out}: run folder already holds a run ({folder.status() or {}}); "
+                        f"continue it with --resume {out}, or choose another --out")
+    if resume and not (out / "checkpoint" / "checkpoint.json").exists() and not (out / "eval_before.jsonl").exists():
+        raise UserError(f"{out}: nothing to resume (no checkpoint/ and no eval_before.jsonl); start a new run")
+    accelerator = Accelerator(cpu=pick_device(cfg.base).type == "cpu")
+    main = accelerator.is_main_process
+    with folder if main else _NoLock():
+        return _run_locked(cfg, out, folder, accelerator, main, resume, force, quiet)
+
+
+class _NoLock:
+    def __enter__(self) -> None:
+        return None
+
+    def __exit__(self, *exc: object) -> None:
+        return None
+
+
+def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Accelerator, main: bool,
+                resume: bool, force: bool, quiet: bool) -> dict[str, Any]:
+    started = time.time()
+    threads = set_threads(cfg.base.threads)
+    device = accelerator.device
+    seed_everything(cfg.run.seed)
+    step = 0
+    try:
+        if main:
+            folder.set_status("running", step=0)
+            write_text_atomic(out / "config.toml", to_toml(cfg))
+            write_json_atomic(out / "environment.json", environment(cfg, threads, device, accelerator))
+        scorer = load_scorer(cfg.reward, "reward")
+        polarity = require_polarity(scorer, cfg.reward, out, force)
+        judge = load_scorer(cfg.evaluation.judge, "evaluation.judge") if cfg.evaluation.judge else None
+        split = load_prompts(cfg.data, cfg.run.seed)
+        if cfg.ppo.prompts_per_step % accelerator.num_processes:
+            raise UserError(f"ppo.prompts_per_step ({cfg.ppo.prompts_per_step}) must divide evenly across "
+                            f"{accelerator.num_processes} processes")
+        policy = build_policy(cfg.base, cfg.lora, cfg.reference, device)
+        if not quiet and main:
+            print(f"policy: {policy.trainable_params:,} trainable of {policy.total_params:,} parameters "
+                  f"({100 * policy.trainable_params / policy.total_params:.2f}%)", flush=True)
+        heldout = split.heldout[: cfg.evaluation.max_prompts or None]
+        before = _evaluate_once(out / "eval_before.jsonl", policy, heldout, scorer, judge, cfg, device, main, quiet,
+                                "before")
+        optimizer = torch.optim.AdamW([p for p in policy.net.parameters() if p.requires_grad],
+                                      lr=cfg.ppo.learning_rate)
+        net, optimizer = accelerator.prepare(policy.net, optimizer)
+        controller = ppo.KLController(beta=cfg.kl.coef, target=cfg.kl.target, gain=cfg.kl.gain)
+        ckpt = out / "checkpoint"
+        if resume and (ckpt / "checkpoint.json").exists():
+            step = load_checkpoint(ckpt, policy, optimizer, controller)
+            if main:
+                _truncate_metrics(out / "metrics.jsonl", step)
+        history = _read_metrics(out / "metrics.jsonl") if resume else []
+        per_proc = cfg.ppo.prompts_per_step // accelerator.num_processes
+        bar = _progress(cfg.ppo.steps, step, quiet or not main)
+        try:
+            with open(out / "metrics.jsonl", "a" if resume else "w", encoding="utf-8") as log:
+                while step < cfg.ppo.steps:
+                    prompts = step_prompts(split.train, step, cfg.ppo.prompts_per_step, cfg.run.seed)
+                    mine = prompts[accelerator.process_index * per_proc:(accelerator.process_index + 1) * per_proc]
+                    try:
+                        row = train_step(policy, net, optimizer, accelerator, scorer, controller, mine, cfg, step, device)
+                    except NonFinite as exc:
+                        if main:
+                            save_checkpoint(ckpt, policy, optimizer, controller, step)
+                            save_adapter(policy, out / "adapter")
+                        raise UserError(f"stopped: {exc}. The last good adapter and checkpoint (step {step}) are "
+                                        f"kept in {out}; lower ppo.learning_rate or check the reward backend") from None
+                    step += 1
+                    history.append(row)
+                    if main:
+                        log.write(json.dumps(row) + "\n")
+                        log.flush()
+                        folder.set_status("running", step=step)
+                        if cfg.run.checkpoint_every and step % cfg.run.checkpoint_every == 0:
+                            save_checkpoint(ckpt, policy, optimizer, controller, step)
+                    bar.update(1)
+                    bar.set_postfix(reward=f"{row['reward_mean']:.3f}", kl=f"{row['kl_mean']:.3f}",
+                                    beta=f"{row['beta']:.3f}")
+        finally:
+            bar.close()
+        if main:
+            save_checkpoint(ckpt, policy, optimizer, controller, step)
+            save_adapter(policy, out / "adapter")
+        after = _evaluate_once(out / "eval_after.jsonl", policy, heldout, scorer, judge, cfg, device, main, quiet,
+                               "after", fresh=True)
+        report: dict[str, Any] = {}
+        if main:
+            report = build_report(cfg=cfg, before=before, after=after, history=history, policy=policy,
+                                  polarity=polarity, scorer=scorer, judge=judge, split=split,
+                                  wall_s=time.time() - started, peak_rss_mb=peak_rss_mb(), started=started)
+            write_report(out, report, before, after)
+            folder.set_status("finished", step=step)
+        accelerator.wait_for_everyone()
+        return report
+    except KeyboardInterrupt:
+        if main:
+            folder.set_status("interrupted", step=step)
+            if "policy" in locals() and "optimizer" in locals():
+                save_checkpoint(out / "checkpoint", policy, optimizer, controller, step)
+            print(f"\ninterrupted at step {step}; continue with: alignrun run CONFIG --resume {out}", file=sys.stderr)
+        raise
+    except BaseException as exc:
+        if main:
+            folder.set_status("failed", step=step, error=str(exc).splitlines()[0][:500])
+        raise
+
+
+def _read_metrics(path: Path) -> list[dict[str, float]]:
+    if not path.exists():
+        return []
+    return [json.loads(ln) for ln in path.read_text().splitlines() if ln.strip()]
+
+
+def _evaluate_once(path: Path, policy: Policy, prompts: list[str], scorer: Any, judge: Any, cfg: Experiment,
+                   device: torch.device, main: bool, quiet: bool, label: str,
+                   fresh: bool = False) -> evaluation.EvalResult:
+    """Held-out evaluation, reused from disk on resume (before) so a resumed run reports the same numbers."""
+    if path.exists() and not fresh:
+        return evaluation.read_samples(path)
+    if not quiet and main:
+        print(f"evaluating {label} training on {len(prompts)} held-out prompts "
+              f"x {cfg.evaluation.samples_per_prompt} samples ...", flush=True)
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(cfg.run.seed + 7919)  # same sampling noise before and after: a paired design
+        with autocast(cfg.base.precision, device):
+            result = evaluation.evaluate_policy(policy, prompts, scorer, judge, cfg, device)
+    if main:
+        evaluation.write_samples(path, result)
+    return result
+
+
+def _progress(total: int, done: int, disable: bool) -> Any:
+    from tqdm.auto import tqdm
+
+    return tqdm(total=total, initial=done, disable=disable, desc="ppo", unit="step", dynamic_ncols=True)
+
+
+def run_from_cli(config_path: str, overrides: list[str], *, out: str | None, resume: str | None,
+                 force: bool, quiet: bool) -> int:
+    cfg = load_config(config_path, overrides)
+    if resume:
+        saved = Path(resume) / "config.toml"
+        if not saved.exists():
+            raise UserError(f"--resume {resume}: no config.toml there; is it a run folder?")
+        if load_config(saved).model_dump(exclude={"run"}) != cfg.model_dump(exclude={"run"}):
+            raise UserError(f"--resume {resume}: {config_path} (with --set) differs from the run's saved config.toml; "
+                            "resume with the same config, or start a new run")
+        out = resume
+    target = Path(out or cfg.run.out or Path("runs") / cfg.run.name)
+    report = run_experiment(cfg, target, resume=bool(resume), force=force, quiet=quiet)
+    if report:
+        print(evaluation.summary_text(report))
+        print(f"\nrun folder: {target}")
+    _teardown()
+    return 0
+
+
+def _teardown() -> None:
+    """Explicit process-group teardown: without it a gloo process sometimes aborts at exit (STACK-NOTES)."""
+    if torch.distributed.is_available() and torch.distributed.is_initialized():
+        torch.distributed.destroy_process_group()
