@@ -116,9 +116,8 @@ def _sign(x: float) -> int:
     return (x > 0) - (x < 0)
 
 
-def _per_prompt(report: dict[str, Any], key: str) -> np.ndarray | None:
-    values = report["evaluation"]["per_prompt"].get(key)
-    return None if values is None else np.asarray(values, dtype=float)
+def _per_prompt(report: dict[str, Any], key: str) -> np.ndarray:
+    return np.asarray(report["evaluation"]["per_prompt"][key], dtype=float)
 
 
 def run_row(run: Run) -> dict[str, Any]:
@@ -131,8 +130,9 @@ def run_row(run: Run) -> dict[str, Any]:
     own = ev["change"]["reward_classifier"]
     match = all(_close(harm[k], own.get(k)) for k in ("diff", "diff_ci", "rel_change", "rel_ci", "wilcoxon_p"))
     before, after = ev["before"]["reward_classifier"], ev["after"]["reward_classifier"]
-    jb, ja = _per_prompt(rep, "judge_before"), _per_prompt(rep, "judge_after")
-    judge = metrics.paired_change(jb, ja, resamples, seed) if jb is not None and ja is not None else None
+    has_judge = all(ev["per_prompt"].get(k) is not None for k in ("judge_before", "judge_after"))
+    judge = (metrics.paired_change(_per_prompt(rep, "judge_before"), _per_prompt(rep, "judge_after"), resamples, seed)
+             if has_judge else None)
     gb, ga = ev["before"]["guards"], ev["after"]["guards"]
     return {
         "run": run.label, "folder": str(run.folder),
@@ -239,12 +239,13 @@ def columns(rows: list[dict[str, Any]], varying: list[str]) -> list[tuple[str, l
 
     cols = [col("run", lambda r: r["run"])] + [col(k, lambda r, k=k: _short(r[k])) for k in varying]
     cols += [
-        col("harm before", lambda r: _num(r["harm_before"])), col("harm after", lambda r: _num(r["harm_after"])),
+        col("harm mean", lambda r: _pair(r, "harm", 3)), col("harm rate", lambda r: _pair(r, "harm_rate")),
+        col("exp. max", lambda r: _pair(r, "harm_max")),
         col("change", lambda r: _pct(r["harm_rel_change"])), col("95% CI", lambda r: _pct_ci(r["harm_rel_ci"])),
         col("p", lambda r: "—" if r["wilcoxon_p"] is None else f"{r['wilcoxon_p']:.2g}"),
         col("judge", lambda r: f"{_num(r['judge_before'])}→{_num(r['judge_after'])}"),
         col("agrees", lambda r: {None: "—", True: "yes", False: "NO"}[r["judge_agrees"]]),
-        col("KL", lambda r: _num(r["kl"])),
+        col("KL", lambda r: _num(r["kl"])), col("train KL", lambda r: _num(r["train_kl"])),
     ]
     if "vs_first_rel" in rows[0]:
         cols.append(col("vs first", lambda r: "(first)" if r["vs_first_paired"] is None

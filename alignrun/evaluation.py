@@ -24,8 +24,10 @@ CHUNK = 64  # sequences per generation batch
 class EvalResult:
     prompts: list[str]
     samples: list[list[str]]     # [n][k] sampled replies (temperature 1)
+    token_ids: list[list[list[int]]]  # [n][k] their token ids up to and including EOS
     harm: np.ndarray             # [n, k] reward classifier P(harm)
     judge: np.ndarray | None     # [n, k] outside judge P(harm)
+    logp: np.ndarray             # [n, k] sum of the policy's log-probs of each reply
     kl: np.ndarray               # [n, k] sum over tokens of log pi - log pi_ref (k1, unbiased for sampled replies)
     ref_nll: np.ndarray          # [n, k] negative log-likelihood under the reference
     tokens: np.ndarray           # [n, k] generated tokens incl. EOS
@@ -35,10 +37,11 @@ class EvalResult:
 
 
 def _generate(policy: Policy, prompts: list[str], cfg: Experiment, device: torch.device,
-              do_sample: bool) -> tuple[list[str], np.ndarray, np.ndarray, np.ndarray]:
+              do_sample: bool) -> tuple[list[str], list[list[int]], np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     tok = policy.tokenizer
     texts: list[str] = []
-    kl, nll, ntok = [], [], []
+    ids_out: list[list[int]] = []
+    lp, kl, nll, ntok = [], [], [], []
     for i in range(0, len(prompts), CHUNK):
         ids, mask = encode_prompts(tok, prompts[i: i + CHUNK], cfg.generation.max_prompt_tokens, device)
         seqs, logp, _ = sample(policy, ids, mask, cfg.generation.max_new_tokens, do_sample=do_sample, with_values=False)
@@ -46,27 +49,30 @@ def _generate(policy: Policy, prompts: list[str], cfg: Experiment, device: torch
         m = response_mask(resp, tok.eos_token_id)
         resp = torch.where(m.bool(), resp, torch.full_like(resp, tok.pad_token_id))
         ref = reference_logprobs(policy, ids, mask, seqs[:, :-1], resp)
+        lp.append((logp * m).sum(1))
         kl.append(((logp - ref) * m).sum(1))
         nll.append(-(ref * m).sum(1))
         ntok.append(m.sum(1))
         texts.extend(t.strip() for t in tok.batch_decode(resp, skip_special_tokens=True))
+        ids_out.extend(row[: int(n)].tolist() for row, n in zip(resp, m.sum(1)))
     cat = lambda xs: torch.cat(xs).float().cpu().numpy()  # noqa: E731
-    return texts, cat(kl), cat(nll), cat(ntok)
+    return texts, ids_out, cat(lp), cat(kl), cat(nll), cat(ntok)
 
 
 def evaluate_policy(policy: Policy, prompts: list[str], scorer: Any, judge: Any, cfg: Experiment,
                     device: torch.device) -> EvalResult:
     n, k = len(prompts), cfg.evaluation.samples_per_prompt
     flat = [p for p in prompts for _ in range(k)]
-    texts, kl, nll, ntok = _generate(policy, flat, cfg, device, do_sample=True)
+    texts, ids, lp, kl, nll, ntok = _generate(policy, flat, cfg, device, do_sample=True)
     greedy, *_ = _generate(policy, prompts, cfg, device, do_sample=False)
     harm = scorer.score(texts + greedy).harm
     judged = judge.score(texts + greedy).harm if judge is not None else None
     shape = (n, k)
     return EvalResult(
         prompts=prompts, samples=[texts[i * k:(i + 1) * k] for i in range(n)],
+        token_ids=[ids[i * k:(i + 1) * k] for i in range(n)],
         harm=np.asarray(harm[: n * k]).reshape(shape), judge=None if judged is None else np.asarray(judged[: n * k]).reshape(shape),
-        kl=kl.reshape(shape), ref_nll=nll.reshape(shape), tokens=ntok.reshape(shape), greedy=greedy,
+        logp=lp.reshape(shape), kl=kl.reshape(shape), ref_nll=nll.reshape(shape), tokens=ntok.reshape(shape), greedy=greedy,
         greedy_harm=np.asarray(harm[n * k:]), greedy_judge=None if judged is None else np.asarray(judged[n * k:]),
     )
 
@@ -77,8 +83,9 @@ def write_samples(path: Path, r: EvalResult) -> None:
     for i, prompt in enumerate(r.prompts):
         for j, text in enumerate(r.samples[i]):
             rows.append({"prompt_index": i, "prompt": prompt, "sample": j, "greedy": False, "text": text,
+                         "token_ids": r.token_ids[i][j],
                          "harm": float(r.harm[i, j]), "judge": None if r.judge is None else float(r.judge[i, j]),
-                         "kl": float(r.kl[i, j]), "ref_nll": float(r.ref_nll[i, j]), "tokens": int(r.tokens[i, j])})
+                         "logp": float(r.logp[i, j]), "kl": float(r.kl[i, j]), "ref_nll": float(r.ref_nll[i, j]), "tokens": int(r.tokens[i, j])})
         rows.append({"prompt_index": i, "prompt": prompt, "sample": None, "greedy": True, "text": r.greedy[i],
                      "harm": float(r.greedy_harm[i]),
                      "judge": None if r.greedy_judge is None else float(r.greedy_judge[i])})
@@ -95,7 +102,8 @@ def read_samples(path: Path) -> EvalResult:
     has_judge = bool(rows) and rows[0]["judge"] is not None
     return EvalResult(
         prompts=[r["prompt"] for r in greedy], samples=[[r["text"] for r in sampled[i * k:(i + 1) * k]] for i in range(n)],
-        harm=grid("harm"), judge=grid("judge") if has_judge else None, kl=grid("kl"), ref_nll=grid("ref_nll"),
+        token_ids=[[r["token_ids"] for r in sampled[i * k:(i + 1) * k]] for i in range(n)],
+        harm=grid("harm"), judge=grid("judge") if has_judge else None, logp=grid("logp"), kl=grid("kl"), ref_nll=grid("ref_nll"),
         tokens=grid("tokens"), greedy=[r["text"] for r in greedy],
         greedy_harm=np.array([r["harm"] for r in greedy]),
         greedy_judge=np.array([r["judge"] for r in greedy]) if has_judge else None,

@@ -161,6 +161,15 @@ class Policy:
                 yield self.lm
 
 
+def wrap_lora(model: nn.Module, lora: LoraSection) -> PeftModel:
+    """W' = W + (alpha/r) B A with B = 0 at the start, so the policy equals the base at step 0 (Hu et al. 2021)."""
+    peft_cfg = LoraConfig(task_type=TaskType.SEQ_2_SEQ_LM, r=lora.rank, lora_alpha=lora.alpha,
+                          lora_dropout=lora.dropout, target_modules=lora_targets(model, lora.targets))
+    lm = get_peft_model(model, peft_cfg)
+    lm.eval()  # dropout stays off in rollouts and updates alike
+    return lm
+
+
 def build_policy(base: BaseSection, lora: LoraSection, reference: ReferenceSection,
                  device: torch.device) -> Policy:
     model, tokenizer = load_base(base, device)
@@ -168,10 +177,7 @@ def build_policy(base: BaseSection, lora: LoraSection, reference: ReferenceSecti
     ref_copy = None
     if reference.mode == "copy":
         ref_copy = copy.deepcopy(model).eval().requires_grad_(False)
-    peft_cfg = LoraConfig(task_type=TaskType.SEQ_2_SEQ_LM, r=lora.rank, lora_alpha=lora.alpha,
-                          lora_dropout=lora.dropout, target_modules=lora_targets(model, lora.targets))
-    lm = get_peft_model(model, peft_cfg)
-    lm.eval()  # dropout stays off in rollouts and updates alike
+    lm = wrap_lora(model, lora)
     head = ValueHead(model.config.d_model).to(device)
     trainable = sum(p.numel() for p in lm.parameters() if p.requires_grad)
     total = sum(p.numel() for p in lm.parameters())

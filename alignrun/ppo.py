@@ -30,7 +30,8 @@ def masked_var(x: Tensor, mask: Tensor, unbiased: bool = True) -> Tensor:
     var = masked_mean(centred**2, mask)
     if unbiased:
         count = mask.bool().sum().to(var.dtype)
-        var = torch.where(count > 1, var * count / (count - 1).clamp(min=1), torch.zeros_like(var))  # Bessel
+        # Bessel's correction n / (n - 1) (common practice)
+        var = torch.where(count > 1, var * count / (count - 1).clamp(min=1), torch.zeros_like(var))
     return var
 
 
@@ -111,7 +112,8 @@ def policy_loss(
     (its gradient is cut); approx KL is the masked mean of k3 with samples from the old policy.
     The last two are detached statistics.
     """
-    log_ratio = logp_new - logp_old
+    # padding gets ratio 1 so that whatever log-probs it holds cannot reach the gradient as NaN/inf
+    log_ratio = torch.where(mask.bool(), logp_new - logp_old, torch.zeros_like(logp_new))
     ratio = torch.exp(log_ratio)
     unclipped = ratio * advantages
     clipped = torch.clamp(ratio, 1.0 - clip_eps, 1.0 + clip_eps) * advantages

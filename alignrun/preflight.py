@@ -122,16 +122,27 @@ def auroc(scores: Sequence[float] | np.ndarray, positive: Sequence[bool] | np.nd
     return float(u / (n1 * n0))  # Hanley & McNeil 1982: AUROC = U / (n1 * n0)
 
 
-def _inverted_fix(section: RewardSection, label_aurocs: dict[str, float], harmful: list[str]) -> tuple[str, str | None]:
+def _inverted_fix(section: RewardSection, label_aurocs: dict[str, float],
+                  harmful: list[str]) -> tuple[str, str | None]:
     """(a sentence saying what would be correct, the exact config change or None) for an inverted harm score."""
     others = {name: a for name, a in label_aurocs.items() if name not in harmful}
-    if not others:
+    if not others and section.backend == "callable":
         return (f"There is no other class to choose: make {section.source} return P(harmful), i.e. 1 minus what "
                 "it returns now.", None)
+    if not others:
+        return (f"Every class of {section.source} is named harmful and none ranks harmful probes higher; check "
+                "that the classifier was trained for this kind of harm.", None)
     best = max(others, key=lambda name: others[name])
     change = f"reward.harmful_index = {best}" if section.harmful_index is not None else \
         f'reward.harmful_labels = ["{best}"]'
+    if others[best] < section.min_auroc:
+        return (f"No other class separates the harmful probes well either (best: {best!r}, AUROC "
+                f"{others[best]:.3f}); check that the classifier was trained for this kind of harm.", change)
     return f"Class {best!r} separates the harmful probes best (AUROC {others[best]:.3f}): set {change}.", change
+
+
+def _harm_text(harmful_names: list[str]) -> str:
+    return "P(" + " or ".join(harmful_names) + ")"
 
 
 def _sign_fix(section: RewardSection) -> str:
@@ -163,7 +174,8 @@ def check_polarity(scorer: Scorer, section: RewardSection) -> PolarityReport:
     suggestion = None
     if a >= m and ra >= m:
         verdict = "ok"
-        message = f"The reward points the right way: harmful probes get higher harm and benign probes higher reward ({numbers})."
+        message = ("The reward points the right way: harmful probes get higher harm and benign probes higher "
+                   f"reward ({numbers}).")
     elif a >= m:
         verdict = "sign-wrong"
         suggestion = _sign_fix(section)
@@ -186,15 +198,11 @@ def check_polarity(scorer: Scorer, section: RewardSection) -> PolarityReport:
                    "trained for this kind of harm, or check reward.harmful_labels and reward.source.")
     return PolarityReport(
         verdict=verdict, message=message, auroc=a, gap=gap, reward_auroc=ra, reward_gap=reward_gap, min_auroc=m,
-        inverted_below=1 - m, scorer=scorer.description, executes_code=scorer.executes_code, transform=transform,
+        inverted_below=round(1 - m, 9), scorer=scorer.description, executes_code=scorer.executes_code, transform=transform,
         label_aurocs=label_aurocs, suggestion=suggestion, n_harmful=int(y.sum()), n_benign=int((~y).sum()),
         probe_files=["built-in", *section.probes],
-        probes=[ProbeScore(p.text, p.harmful, float(h), float(r)) for p, h, r in zip(probes, harm, reward)],
+        probes=[ProbeScore(p.text, p.harmful, float(h), float(r)) for p, h, r in zip(probes, harm, reward, strict=True)],
     )
-
-
-def _harm_text(harmful_names: list[str]) -> str:
-    return "P(" + " or ".join(harmful_names) + ")"
 
 
 def write_preflight(report: PolarityReport, folder: str | Path) -> Path:
@@ -225,8 +233,9 @@ def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path
               "(module import or pickle); use only sources you trust")
     print(f"transform: {report.transform}")
     print(f"probes: {report.n_harmful} harmful, {report.n_benign} benign ({', '.join(report.probe_files)})")
-    print(f"harm AUROC {report.auroc:.3f} (ok at >= {report.min_auroc:g}, inverted at <= {report.inverted_below:.2f}), "
-          f"mean harm gap {report.gap:+.3f}; reward AUROC {report.reward_auroc:.3f}, reward gap {report.reward_gap:+.3f}")
+    print(f"harm AUROC {report.auroc:.3f} (ok at >= {report.min_auroc:g}, inverted at <= {report.inverted_below:g}), "
+          f"mean harm gap {report.gap:+.3f}; reward AUROC {report.reward_auroc:.3f}, "
+          f"reward gap {report.reward_gap:+.3f}")
     print(f"verdict: {report.verdict}")
     print(report.message)
     # RESOURCE ESTIMATE: the lead adds the memory / step-time estimate here.

@@ -36,7 +36,8 @@ _SANE_MAX_LENGTH = 1_000_000
 _FALLBACK_MAX_LENGTH = 512
 _TOKENIZER_FILES = ("tokenizer.json", "vocab.txt", "vocab.json", "spiece.model", "sentencepiece.bpe.model",
                     "tokenizer.model")
-# Models whose position ids start after the padding index (position = pad_token_id + 1 + i).
+# Models whose position ids start after the padding index (position = pad_token_id + 1 + i), so they hold
+# max_position_embeddings - pad_token_id - 1 tokens (RoBERTa: 514 - 1 - 1 = 512).
 _PADDING_OFFSET_TYPES = {"roberta", "xlm-roberta", "camembert", "longformer", "data2vec-text", "ibert",
                          "xlm-roberta-xl", "roberta-prelayernorm", "xmod"}
 
@@ -51,11 +52,15 @@ class Scores:
 
     def class_probabilities(self) -> np.ndarray:
         """[n, C] per-class probabilities (softmax or sigmoid of logits, or raw itself)."""
-        if self.raw_kind == "softmax-logits":
-            return softmax(self.raw, axis=1)
-        if self.raw_kind == "sigmoid-logits":
-            return expit(self.raw)
-        return self.raw
+        return _probabilities(self.raw, self.raw_kind)
+
+
+def _probabilities(raw: np.ndarray, kind: RawKind) -> np.ndarray:
+    if kind == "softmax-logits":
+        return softmax(raw, axis=1)
+    if kind == "sigmoid-logits":
+        return expit(raw)  # multi-label heads: an independent sigmoid per label
+    return raw
 
 
 class Scorer(Protocol):
@@ -136,7 +141,6 @@ class HFScorer:
     executes_code = False  # trust_remote_code stays False
 
     def __init__(self, section: ScorerSection, key: str):
-        import torch  # noqa: F401  (fail here, not mid-run, if torch is missing)
         from transformers import AutoConfig, AutoModelForSequenceClassification, AutoTokenizer
 
         source, revision = section.source, section.revision
@@ -147,6 +151,8 @@ class HFScorer:
         try:
             config = AutoConfig.from_pretrained(source, revision=revision, trust_remote_code=False)
         except (OSError, ValueError) as exc:
+            if folder is not None:
+                raise UserError(f"{where}: could not read {folder / 'config.json'}: {_first_line(exc)}") from None
             raise UserError(
                 f"{where}: not a model folder and not a hub model available offline ({_first_line(exc)}); "
                 "give the path of a sequence-classifier folder, or download the hub model once with network "
@@ -158,6 +164,15 @@ class HFScorer:
                 f"{where}: is a {', '.join(architectures)} model, not a sequence classifier; point {key}.source "
                 "at a classifier (architecture ending in ForSequenceClassification) that gives P(harmful)"
             )
+        id2label = config.id2label or {}
+        self.labels = [str(id2label.get(i, f"LABEL_{i}")) for i in range(config.num_labels)]
+        named = any(name != f"LABEL_{i}" for i, name in enumerate(self.labels))  # LABEL_i: no real names
+        # a single-output head is read as one sigmoid (binary) label
+        self.multi_label = config.problem_type == "multi_label_classification" or config.num_labels == 1
+        self.harmful = resolve_harmful(section, key, self.labels, named, source)
+        if not self.multi_label:
+            _refuse_all_harmful(key, source, self.harmful, self.labels)
+
         try:
             tokenizer = AutoTokenizer.from_pretrained(source, revision=revision, trust_remote_code=False)
             model, info = AutoModelForSequenceClassification.from_pretrained(
@@ -178,19 +193,15 @@ class HFScorer:
             tokenizer.pad_token = tokenizer.eos_token  # common practice for heads trained without padding
         if model.config.pad_token_id is None:
             model.config.pad_token_id = tokenizer.pad_token_id
+        own_limit = _own_max_length(tokenizer, config)
+        if section.max_length > own_limit:
+            raise UserError(f"{key}.max_length = {section.max_length}: {source} takes at most {own_limit} tokens; "
+                            f"set {key}.max_length to {own_limit} or less (0 uses the model's own limit)")
 
         self.tokenizer, self.model = tokenizer, model.eval()
-        self.batch_size = section.batch_size
-        self.max_length = section.max_length or _own_max_length(tokenizer, config)
-        self.inputs = set(inspect.signature(model.forward).parameters)
-        id2label = config.id2label or {}
-        self.labels = [str(id2label.get(i, f"LABEL_{i}")) for i in range(config.num_labels)]
-        named = any(name != f"LABEL_{i}" for i, name in enumerate(self.labels))
-        self.multi_label = config.problem_type == "multi_label_classification" or config.num_labels == 1
-        self.harmful = resolve_harmful(section, key, self.labels, named, source)
-        if not self.multi_label:
-            _refuse_all_harmful(key, source, self.harmful, self.labels)
-        self.combine = section.combine
+        self.inputs = set(inspect.signature(model.forward).parameters)  # e.g. DistilBERT takes no token_type_ids
+        self.batch_size, self.combine = section.batch_size, section.combine
+        self.max_length = section.max_length or own_limit
         rev = f"@{revision}" if revision else ""
         head = "multi-label" if self.multi_label else "softmax"
         self.description = (f"hf classifier {source}{rev} ({head}, harmful: "
@@ -199,19 +210,21 @@ class HFScorer:
     def score(self, texts: Sequence[str]) -> Scores:
         import torch
 
+        order = np.argsort([len(t) for t in texts], kind="stable")  # similar lengths share a batch: less padding
         chunks = []
         with torch.no_grad():
             for start in range(0, len(texts), self.batch_size):
-                batch = list(texts[start:start + self.batch_size])
+                batch = [texts[i] for i in order[start:start + self.batch_size]]
                 enc = self.tokenizer(batch, padding=True, truncation=True, max_length=self.max_length,
                                      return_tensors="pt")
                 enc = {k: v for k, v in enc.items() if k in self.inputs}
                 chunks.append(self.model(**enc).logits.float().cpu().numpy())
-        raw = np.concatenate(chunks) if chunks else np.zeros((0, len(self.labels)))
+        raw = np.zeros((len(texts), len(self.labels)))
+        if chunks:
+            raw[order] = np.concatenate(chunks)
         kind: RawKind = "sigmoid-logits" if self.multi_label else "softmax-logits"
-        scores = Scores(harm=np.zeros(len(raw)), raw=raw, labels=self.labels, harmful=self.harmful, raw_kind=kind)
-        scores.harm = combine(scores.class_probabilities()[:, self.harmful], self.combine)
-        return scores
+        harm = combine(_probabilities(raw, kind)[:, self.harmful], self.combine)
+        return Scores(harm=harm, raw=raw, labels=self.labels, harmful=self.harmful, raw_kind=kind)
 
 
 def _first_line(exc: BaseException) -> str:

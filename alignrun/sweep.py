@@ -134,7 +134,8 @@ def expand_trials(cfg: Experiment, source: str = "config") -> list[Trial]:
     points = [dict(zip(keys, values)) for values in itertools.product(*cfg.sweep.grid.values())]
     if cfg.sweep.seeds:
         points = [{**point, "run.seed": seed} for point in points for seed in cfg.sweep.seeds]
-    trials, names = [], set()
+    trials: list[Trial] = []
+    names: set[str] = set()
     for point in points:
         name = trial_name(point)
         if name in names:  # two value lists that read the same once made file-safe
@@ -256,6 +257,7 @@ def _run_sequential(jobs: list[Job], runner: TrialRunner, quiet: bool, done: Cal
 
 
 def _run_pool(jobs: list[Job], runner: TrialRunner, workers: int, done: Callable[[Job, dict], None]) -> None:
+    """`workers` trials at once in fresh ("spawn") processes, each with its share of the cores."""
     share = max(1, _cores() // workers)
     with ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn")) as pool:
         futures = {pool.submit(runner, _with_threads(job.trial.config, share).model_dump(mode="json"),
@@ -277,6 +279,7 @@ def _outcome(future: Future) -> dict[str, Any]:
 
 def _run_ray(jobs: list[Job], runner: TrialRunner, workers: int, address: str | None, quiet: bool,
              done: Callable[[Job, dict], None]) -> None:
+    """One Ray task per trial, asking for as many CPUs as the trial uses threads (a node's CPUs / workers)."""
     try:
         import ray
     except ImportError:
@@ -304,8 +307,9 @@ def _run_ray(jobs: list[Job], runner: TrialRunner, workers: int, address: str | 
                 job = pending.pop(ref)
                 try:
                     result = ray.get(ref)
-                except Exception as exc:  # the task's worker died
-                    result = _failed(f"ray task failed: {type(exc).__name__}: {exc}")
+                except Exception as exc:  # the task's worker died, or an error escaped the runner
+                    cause = getattr(exc, "cause", None) or exc
+                    result = _failed(f"ray task failed: {type(cause).__name__}: {cause}")
                 done(job, result)
     finally:
         if started:

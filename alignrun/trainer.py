@@ -87,7 +87,7 @@ def ppo_update(net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerat
                 ent = ppo.masked_mean(entropy_from_logits(logits), mask)
             for key, val in (("policy_loss", pl), ("value_loss", vl), ("clip_frac", clip_frac),
                              ("value_clip_frac", vclip), ("approx_kl", approx_kl), ("entropy", ent)):
-                totals[key].append(float(val))
+                totals[key].append(float(val.detach()))
     return {k: float(np.mean(v)) for k, v in totals.items()}
 
 
@@ -214,9 +214,20 @@ class _NoLock:
         return None
 
 
+def _quiet_libraries() -> None:
+    import warnings
+
+    import transformers
+
+    transformers.utils.logging.set_verbosity_error()
+    transformers.utils.logging.disable_progress_bar()
+    warnings.filterwarnings("ignore", category=FutureWarning, module=r"transformers\..*")
+
+
 def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Accelerator, main: bool,
                 resume: bool, force: bool, quiet: bool) -> dict[str, Any]:
     started = time.time()
+    _quiet_libraries()
     threads = set_threads(cfg.base.threads)
     device = accelerator.device
     seed_everything(cfg.run.seed)

@@ -37,9 +37,11 @@ def _eval_result(prompts: list[str], harm: np.ndarray, judge: np.ndarray | None,
 
     n, k = harm.shape
     samples = [[" ".join(rng.choice(WORDS, size=rng.integers(3, 9))) for _ in range(k)] for _ in range(n)]
-    tokens = np.array([[len(s.split()) + 1 for s in row] for row in samples], dtype=float)
-    return EvalResult(prompts=prompts, samples=samples, harm=harm, judge=judge, kl=kl,
-                      ref_nll=tokens * rng.uniform(1.0, 3.0, size=(n, k)), tokens=tokens,
+    token_ids = [[[WORDS.index(w) + 5 for w in s.split()] + [1] for s in row] for row in samples]  # 1 = EOS
+    tokens = np.array([[len(ids) for ids in row] for row in token_ids], dtype=float)
+    ref_nll = tokens * rng.uniform(1.0, 3.0, size=(n, k))
+    return EvalResult(prompts=prompts, samples=samples, token_ids=token_ids, harm=harm, judge=judge,
+                      logp=kl - ref_nll, kl=kl, ref_nll=ref_nll, tokens=tokens,
                       greedy=[row[0] for row in samples], greedy_harm=harm[:, 0],
                       greedy_judge=None if judge is None else judge[:, 0])
 

@@ -177,6 +177,16 @@ def test_policy_loss_sign_and_gradient_direction():
     assert float(at_one) == pytest.approx(1.0)
 
 
+def test_policy_loss_padding_cannot_reach_the_gradient():
+    # padding may hold any log-prob (even -inf or NaN); its gradient must be exactly 0 (common practice)
+    logp_new = torch.tensor([[-0.5, float("-inf"), float("nan")]], requires_grad=True)
+    mask = torch.tensor([[1.0, 0.0, 0.0]])
+    loss, clip_frac, approx_kl = policy_loss(logp_new, torch.full((1, 3), -0.6), torch.ones(1, 3), mask, 0.2)
+    loss.backward()
+    assert torch.isfinite(loss) and torch.isfinite(clip_frac) and torch.isfinite(approx_kl)
+    assert logp_new.grad[0, 0] < 0 and (logp_new.grad[0, 1:] == 0).all()
+
+
 def test_value_loss_hand_computation():
     # Huang et al. 2022 (value loss clipping), computed by hand with clip 0.2:
     # token 1: V_clip = 0.5 + 0.2 = 0.7, max((1-2)^2, (0.7-2)^2) = 1.69 (clipped term wins)

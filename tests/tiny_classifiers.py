@@ -3,12 +3,14 @@
     train_hf_classifier(out, arch)     BERT / DistilBERT / RoBERTa, softmax or multi-label head, named labels
     random_hf_classifier(out)          the same shape with random weights (knows nothing)
     swap_label_names(src, out)         a copy whose label names are exchanged, so "harmful" names the benign class
-    harm_probability / class_probabilities    module:function callables backed by a char n-gram model
+    harm_probability / class_probabilities    callables backed by a char n-gram model; use as
+                                       reward.source = "tests.tiny_classifiers:harm_probability"
     tiny_seq2seq(out)                  a tiny T5 LM folder (not a classifier) for error tests
 """
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import json
 import random
@@ -71,7 +73,23 @@ _BENIGN_TEMPLATES = [
 ]
 
 
+# Fragments added to texts of both classes, so that wording around the harmful words carries no signal.
+_OPENERS = ["honestly,", "well,", "listen,", "dear customer,", "ok,", "lol", "by the way,", "oh,", "so,", "hey,",
+            "right,", "look,", "hello,", "sorry,"]
+_CLOSERS = ["today", "again", "anyway", "as usual", "this time", "for sure", "i think", "to be honest", "as always",
+            "by the way", "really", "tbh"]
+
+
 def _fill(template: str, rng: random.Random) -> str:
+    text = _fill_slots(template, rng)
+    if rng.random() < 0.4:
+        text = f"{rng.choice(_OPENERS)} {text}"
+    if rng.random() < 0.4:
+        text = f"{text} {rng.choice(_CLOSERS)}"
+    return text
+
+
+def _fill_slots(template: str, rng: random.Random) -> str:
     pools = {"insult": _INSULT_NOUNS, "bad": _INSULT_ADJ, "dismiss": _DISMISS, "thing": _THINGS, "good": _GOOD_ADJ,
              "friend": _FRIEND_NOUNS, "thanks": _THANKS, "polite": _POLITE, "place": _PLACES, "time": _TIMES,
              "when": _WHEN, "event": _EVENTS}
@@ -86,7 +104,7 @@ def _probe_texts() -> set[str]:
 
 
 @functools.lru_cache(maxsize=1)
-def training_texts(per_class: int = 240, seed: int = 0) -> tuple[list[str], list[bool]]:
+def training_texts(per_class: int = 400, seed: int = 0) -> tuple[list[str], list[bool]]:
     """(texts, is_harmful), invented from templates, deduplicated, balanced."""
     rng = random.Random(seed)
     probes = _probe_texts()
@@ -106,18 +124,34 @@ def training_texts(per_class: int = 240, seed: int = 0) -> tuple[list[str], list
 
 # ----------------------------------------------------------------------------- HF classifiers
 
+
+@contextlib.contextmanager
+def one_torch_thread():
+    """Run torch on one thread, then restore: on 2 shared cores the default pool made tiny-model training
+    about 40x slower under load (1.2 s vs 46 s measured here)."""
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        yield
+    finally:
+        torch.set_num_threads(before)
+
+
 ARCHS = ("bert", "distilbert", "roberta")
 _SPECIALS = ["[PAD]", "[UNK]", "[CLS]", "[SEP]", "[MASK]"]
 _MAX_POSITIONS = 64
-LR = 3e-3
 
 
-def build_tokenizer(texts: list[str], vocab_size: int = 600) -> PreTrainedTokenizerFast:
-    """A WordPiece tokenizer trained on texts, wrapped as PreTrainedTokenizerFast (ids: [PAD]=0 ... [MASK]=4)."""
-    tok = Tokenizer(models.WordPiece(unk_token="[UNK]"))
+def build_tokenizer(texts: list[str], vocab_size: int = 2000) -> PreTrainedTokenizerFast:
+    """A word-level tokenizer trained on texts (unseen words -> [UNK]), as PreTrainedTokenizerFast.
+
+    Ids: [PAD]=0, [UNK]=1, [CLS]=2, [SEP]=3, [MASK]=4. No model_max_length is set, so the tokenizer
+    reports the library's "no limit" sentinel, like many real tokenizers.
+    """
+    tok = Tokenizer(models.WordLevel(unk_token="[UNK]"))
     tok.normalizer = normalizers.BertNormalizer(lowercase=True)
     tok.pre_tokenizer = pre_tokenizers.BertPreTokenizer()
-    tok.train_from_iterator(texts, trainers.WordPieceTrainer(vocab_size=vocab_size, special_tokens=_SPECIALS))
+    tok.train_from_iterator(texts, trainers.WordLevelTrainer(vocab_size=vocab_size, special_tokens=_SPECIALS))
     tok.post_processor = processors.TemplateProcessing(
         single="[CLS] $A [SEP]", pair="[CLS] $A [SEP] $B [SEP]",
         special_tokens=[("[CLS]", tok.token_to_id("[CLS]")), ("[SEP]", tok.token_to_id("[SEP]"))],
@@ -138,7 +172,7 @@ def _tiny_model(arch: str, vocab_size: int, labels: list[str], multi_label: bool
                                max_position_embeddings=_MAX_POSITIONS, pad_token_id=0, **names)
         return DistilBertForSequenceClassification(cfg)
     if arch == "roberta":
-        # RoBERTa positions start at pad_token_id + 1, so it needs two more position slots.
+        # RoBERTa numbers positions from pad_token_id + 1: 66 slots with pad id 0 hold 65 tokens.
         cfg = RobertaConfig(vocab_size=vocab_size, hidden_size=hidden, num_hidden_layers=2, num_attention_heads=2,
                             intermediate_size=2 * hidden, max_position_embeddings=_MAX_POSITIONS + 2, pad_token_id=0,
                             bos_token_id=2, eos_token_id=3, type_vocab_size=1, **names)
@@ -162,10 +196,10 @@ def train_hf_classifier(out: Path, arch: str = "bert", labels: tuple[str, str] =
     """
     texts, harmful = training_texts()
     tokenizer = build_tokenizer(texts)
-    with torch.random.fork_rng():
+    with torch.random.fork_rng(), one_torch_thread():
         torch.manual_seed(seed)
         model = _tiny_model(arch, len(tokenizer), list(labels), multi_label)
-        opt = torch.optim.AdamW(model.parameters(), lr=LR)
+        opt = torch.optim.AdamW(model.parameters(), lr=3e-3)
         y = torch.tensor(harmful, dtype=torch.long)
         model.train()
         for _ in range(epochs):
@@ -192,17 +226,25 @@ def random_hf_classifier(out: Path, arch: str = "bert", labels: tuple[str, str] 
     return _save(model.eval(), tokenizer, Path(out), arch)
 
 
-def swap_label_names(src: Path, out: Path) -> Path:
-    """Copy a two-label classifier folder with its two label names exchanged (weights untouched)."""
+def relabel(src: Path, out: Path, names: list[str]) -> Path:
+    """Copy a classifier folder with new label names for its columns (weights untouched)."""
     shutil.copytree(src, out)
     cfg_path = Path(out) / "config.json"
     cfg = json.loads(cfg_path.read_text())
-    names = [cfg["id2label"][str(i)] for i in range(len(cfg["id2label"]))]
-    swapped = names[::-1]
-    cfg["id2label"] = {str(i): n for i, n in enumerate(swapped)}
-    cfg["label2id"] = {n: i for i, n in enumerate(swapped)}
+    cfg["id2label"] = {str(i): n for i, n in enumerate(names)}
+    cfg["label2id"] = {n: i for i, n in enumerate(names)}
     cfg_path.write_text(json.dumps(cfg, indent=2))
     return Path(out)
+
+
+def label_names(folder: Path) -> list[str]:
+    cfg = json.loads((Path(folder) / "config.json").read_text())
+    return [cfg["id2label"][str(i)] for i in range(len(cfg["id2label"]))]
+
+
+def swap_label_names(src: Path, out: Path) -> Path:
+    """A copy whose two label names are exchanged: the name of the harmful class now sits on the benign one."""
+    return relabel(src, out, label_names(src)[::-1])
 
 
 def tiny_seq2seq(out: Path) -> Path:
@@ -214,6 +256,27 @@ def tiny_seq2seq(out: Path) -> Path:
     T5ForConditionalGeneration(cfg).save_pretrained(out)
     tokenizer.save_pretrained(out)
     return Path(out)
+
+
+# name -> (arch, (benign label, harmful label), multi-label head, trained)
+CLASSIFIERS = {
+    "bert": ("bert", ("friendly", "hostile"), False, True),
+    "distilbert": ("distilbert", ("polite", "rude"), False, True),
+    "roberta": ("roberta", ("neutral", "toxic"), False, True),
+    "multilabel": ("bert", ("courteous", "hostile"), True, True),
+    "random": ("bert", ("friendly", "hostile"), False, False),
+}
+_BUILT: dict[str, Path] = {}
+
+
+def shared_classifier(name: str, root: Path) -> Path:
+    """Build a classifier from CLASSIFIERS once per process (test session); later calls reuse the folder."""
+    if name not in _BUILT:
+        arch, labels, multi_label, trained = CLASSIFIERS[name]
+        out = Path(root) / name
+        _BUILT[name] = (train_hf_classifier(out, arch, labels, multi_label) if trained
+                        else random_hf_classifier(out, arch, labels))
+    return _BUILT[name]
 
 
 # ------------------------------------------------------------------------------- callables

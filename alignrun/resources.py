@@ -1,0 +1,258 @@
+"""Before a run: parameter counts, predicted peak memory and seconds per step; which fast CPU settings exist.
+
+Parameters are counted on the `meta` device (no weights are loaded). Memory follows the common-practice
+byte counts per parameter; time divides a FLOP count by matmul throughput measured here in under a second.
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+
+import psutil
+import torch
+from torch import nn
+
+from alignrun.config import Experiment
+from alignrun.errors import UserError
+
+MB = 1024 * 1024
+BYTES_PER_PARAM = {"fp32": 4, "fp16": 2, "bf16": 2, "int8": 1}  # common practice: bytes to hold one weight
+ADAMW_STATE_BYTES = 8  # two fp32 moments per trainable parameter (Kingma & Ba 2015)
+GRAD_BYTES = 4  # one fp32 gradient per trainable parameter (common practice)
+# Resident memory of a process that has imported torch, transformers, peft, trl and accelerate and loaded a
+# model, beyond its weights: calibrated as measured peak RSS minus the rest of this estimate for the tiny
+# (2M-parameter) shape of scripts/bench on the development machine (2 cores, torch 2.13, Linux).
+PROCESS_OVERHEAD_MB = 600.0
+LOGITS_COPIES_UPDATE = 4  # [mb, T, V] fp32 tensors alive in one update minibatch: logits, log-softmax, 2 grads
+LOGITS_COPIES_ROLLOUT = 2  # [B, T, V] fp32: the per-step logits from generation and their stacked copy
+
+
+@dataclass
+class Estimate:
+    base_params: int  # the base model, tied weights counted once
+    lora_params: int  # r * (d_in + d_out) per adapted matrix (Hu et al. 2021)
+    value_head_params: int
+    total_params: int  # base + LoRA, as the trainer reports it
+    trainable_params: int  # LoRA + value head: what AdamW holds state for
+    weights_mb: float
+    optimizer_mb: float  # AdamW moments and gradients of the trainable parameters
+    activations_mb: float
+    overhead_mb: float
+    peak_mb: float
+    available_mb: float
+    flops_per_step: float
+    seconds_per_step: float
+    throughput_gflops: dict[str, float]  # measured matmul throughput (batched, and one-token-per-row decoding)
+    warning: str | None
+
+
+def weight_bytes(params: int, dtype: str) -> int:
+    """Bytes to hold `params` weights: 4 per fp32, 2 per fp16/bf16, 1 per int8 (common practice)."""
+    if dtype not in BYTES_PER_PARAM:
+        raise ValueError(f"unknown dtype {dtype!r}; expected one of {', '.join(BYTES_PER_PARAM)}")
+    return params * BYTES_PER_PARAM[dtype]
+
+
+def optimizer_bytes(trainable: int) -> int:
+    """AdamW: two fp32 moments (Kingma & Ba 2015) plus one fp32 gradient per trainable parameter."""
+    return trainable * (ADAMW_STATE_BYTES + GRAD_BYTES)
+
+
+def meta_model(cfg: Experiment) -> nn.Module:
+    """The base architecture built on the meta device from its config: shapes only, no weights read."""
+    from transformers import AutoConfig, AutoModelForSeq2SeqLM
+
+    base = cfg.base
+    try:
+        config = AutoConfig.from_pretrained(base.model, revision=base.revision,
+                                            trust_remote_code=base.trust_remote_code)
+    except (OSError, ValueError) as exc:
+        raise UserError(f"base.model: cannot read the model config of {base.model!r} for the resource estimate "
+                        f"({str(exc).splitlines()[0]}); expected a local model folder or a cached hub name") from None
+    if not getattr(config, "is_encoder_decoder", False):
+        raise UserError(f"base.model: {base.model} is a {config.model_type!r} model, not an encoder-decoder "
+                        "(seq2seq) language model")
+    with torch.device("meta"):
+        return AutoModelForSeq2SeqLM.from_config(config, trust_remote_code=base.trust_remote_code)
+
+
+def lora_param_count(model: nn.Module, targets: str | list[str], rank: int) -> int:
+    """Sum of r * (d_in + d_out) over the adapted linear layers (Hu et al. 2021).
+
+    targets: leaf module names, or "all-linear" (every linear layer except the output projection).
+    """
+    output = model.get_output_embeddings() if hasattr(model, "get_output_embeddings") else None
+    total = 0
+    for name, module in model.named_modules():
+        if not isinstance(module, nn.Linear) or module is output:
+            continue
+        if targets == "all-linear" or name.rsplit(".", 1)[-1] in targets:
+            total += rank * (module.in_features + module.out_features)
+    return total
+
+
+def _params(module: nn.Module, skip_embeddings: bool = False) -> int:
+    seen = {id(p): p for m in module.modules() if not (skip_embeddings and isinstance(m, nn.Embedding))
+            for p in m.parameters(recurse=False)}
+    return sum(p.numel() for p in seen.values())
+
+
+@dataclass
+class Dims:
+    d_model: int
+    d_ff: int
+    heads: int
+    enc_layers: int
+    dec_layers: int
+    vocab: int
+    enc_params: int  # encoder matmul parameters (embeddings excluded): FLOPs per encoder token / 2
+    dec_params: int  # decoder matmul parameters plus the output projection: FLOPs per decoder token / 2
+    dtype: str
+
+
+def model_dims(model: nn.Module) -> Dims:
+    c = model.config
+    head = model.get_output_embeddings()
+    dtype = {torch.bfloat16: "bf16", torch.float16: "fp16"}.get(getattr(c, "dtype", None) or torch.float32, "fp32")
+    return Dims(
+        d_model=c.d_model, d_ff=getattr(c, "d_ff", None) or getattr(c, "encoder_ffn_dim", 4 * c.d_model),
+        heads=getattr(c, "num_heads", None) or getattr(c, "encoder_attention_heads", 1),
+        enc_layers=getattr(c, "num_layers", None) or getattr(c, "encoder_layers", 1),
+        dec_layers=getattr(c, "num_decoder_layers", None) or getattr(c, "decoder_layers", 1),
+        vocab=c.vocab_size, enc_params=_params(model.get_encoder(), skip_embeddings=True),
+        dec_params=_params(model.get_decoder(), skip_embeddings=True) + head.weight.numel(), dtype=dtype,
+    )
+
+
+def matmul_gflops(m: int, k: int, n: int, seconds: float = 0.3) -> float:
+    """Best observed fp32 matmul throughput for [m, k] @ [k, n] over about `seconds` of repeats."""
+    a, b = torch.randn(m, k), torch.randn(k, n)
+    a @ b
+    best, end = float("inf"), time.perf_counter() + seconds
+    while time.perf_counter() < end:
+        start = time.perf_counter()
+        a @ b
+        best = min(best, time.perf_counter() - start)
+    return 2 * m * k * n / best / 1e9  # a matmul is 2 m k n FLOPs
+
+
+def step_flops(d: Dims, cfg: Experiment, trainable: int) -> tuple[float, float]:
+    """(batched FLOPs, decoding FLOPs) of one step; attention score FLOPs are left out (short sequences).
+
+    Forward: 2 x matmul parameters x tokens (Kaplan et al. 2020). Backward through frozen weights needs
+    only input gradients (another 2 x) plus weight gradients of the trainable ones (2 x trainable x tokens).
+    """
+    b, p, t, e = cfg.ppo.prompts_per_step, cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens, cfg.ppo.epochs
+    forward = 2 * (d.enc_params * b * p + d.dec_params * b * t)
+    backward = forward + 2 * trainable * b * (p + t)
+    encode = 2 * d.enc_params * b * p  # generation encodes the prompts once, batched
+    decode = 2 * d.dec_params * b * t  # then runs the decoder one token per row at a time
+    return encode + forward + e * (forward + backward), decode  # + reference forward + epochs of updates
+
+
+def activation_bytes(d: Dims, cfg: Experiment) -> int:
+    """The larger of the rollout's and one update minibatch's live tensors (fp32), estimated from shapes.
+
+    Per token and layer, backward keeps about 8 d_model-wide and 2 d_ff-wide tensors plus 2 attention maps
+    (scores and probabilities); the vocabulary-wide logits dominate short replies.
+    """
+    b, mb = cfg.ppo.prompts_per_step, cfg.ppo.minibatch
+    p, t = cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens
+    enc = mb * p * d.enc_layers * (8 * d.d_model + 2 * d.d_ff + 2 * d.heads * p)
+    dec = mb * t * d.dec_layers * (12 * d.d_model + 2 * d.d_ff + 2 * d.heads * (t + p))
+    update = 4 * (enc + dec + LOGITS_COPIES_UPDATE * mb * t * d.vocab)
+    rollout = 4 * LOGITS_COPIES_ROLLOUT * b * t * d.vocab
+    return max(update, rollout)
+
+
+def estimate(cfg: Experiment) -> Estimate:
+    """Parameter counts, peak memory (MB) and seconds per step predicted for `cfg` on this machine."""
+    from alignrun.models import lora_targets
+
+    model = meta_model(cfg)
+    d = model_dims(model)
+    base = _params(model)
+    lora = lora_param_count(model, lora_targets(model, cfg.lora.targets), cfg.lora.rank)
+    head = d.d_model + 1
+    trainable = lora + head
+    copies = 2 if cfg.reference.mode == "copy" else 1
+    weights = weight_bytes(base, d.dtype) * copies + weight_bytes(lora + head, "fp32")
+    optimizer = optimizer_bytes(trainable)
+    activations = activation_bytes(d, cfg)
+    peak_mb = (weights + optimizer + activations) / MB + PROCESS_OVERHEAD_MB
+    batched, decode = step_flops(d, cfg, trainable)
+    b, mb, p = cfg.ppo.prompts_per_step, cfg.ppo.minibatch, cfg.generation.max_prompt_tokens
+    throughput = {"batched": matmul_gflops(mb * p, d.d_model, d.d_ff), "decode": matmul_gflops(b, d.d_model, d.d_ff)}
+    seconds = batched / (throughput["batched"] * 1e9) + decode / (throughput["decode"] * 1e9)
+    available = psutil.virtual_memory().available / MB
+    warning = None
+    if peak_mb > available:
+        warning = (f"predicted peak memory {peak_mb:,.0f} MB exceeds the {available:,.0f} MB available: lower "
+                   "ppo.minibatch or generation.max_new_tokens, use a smaller base.model, or keep "
+                   "reference.mode = 'adapters-off'")
+    return Estimate(base_params=base, lora_params=lora, value_head_params=head, total_params=base + lora,
+                    trainable_params=trainable, weights_mb=weights / MB, optimizer_mb=optimizer / MB,
+                    activations_mb=activations / MB, overhead_mb=PROCESS_OVERHEAD_MB, peak_mb=peak_mb,
+                    available_mb=available, flops_per_step=batched + decode, seconds_per_step=seconds,
+                    throughput_gflops=throughput, warning=warning)
+
+
+def cpu_flags(path: Path = Path("/proc/cpuinfo")) -> set[str]:
+    """The CPU feature flags the kernel reports (empty where /proc/cpuinfo does not exist)."""
+    try:
+        text = path.read_text()
+    except OSError:
+        return set()
+    return {f for line in text.splitlines() if line.startswith(("flags", "Features"))
+            for f in line.partition(":")[2].split()}
+
+
+def _int8_dynamic_works() -> bool:
+    try:
+        from torch.ao.quantization import quantize_dynamic
+
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # the torch.ao API announces its deprecation on every call
+            layer = quantize_dynamic(nn.Sequential(nn.Linear(8, 8)), {nn.Linear}, dtype=torch.qint8)
+            layer(torch.zeros(1, 8))
+        return True
+    except (ImportError, RuntimeError, AttributeError):
+        return False
+
+
+def fast_settings() -> dict[str, bool | str]:
+    """Which fast CPU settings this machine and torch build support.
+
+    bf16: native bf16 dot products (avx512_bf16 or amx_bf16) and torch's AVX-512 kernels, so
+    base.precision = "bf16" (autocast) is faster; int8_dynamic: torch's dynamic int8 quantisation of
+    linear layers runs here (alignrun does not train on int8 weights; this is for information).
+    """
+    flags = cpu_flags()
+    capability = torch.backends.cpu.get_cpu_capability()
+    bf16 = bool(flags & {"avx512_bf16", "amx_bf16"}) and "AVX512" in capability
+    return {"cpu_capability": capability, "bf16": bf16, "amx": "amx_bf16" in flags,
+            "int8_dynamic": _int8_dynamic_works(), "recommended_precision": "bf16" if bf16 else "fp32"}
+
+
+def describe(est: Estimate, settings: dict[str, bool | str], precision: str) -> list[str]:
+    """Lines for `alignrun check`."""
+    lines = [
+        f"parameters: {est.total_params:,} total, {est.trainable_params:,} trainable "
+        f"(LoRA {est.lora_params:,} + value head {est.value_head_params:,})",
+        f"memory: predicted peak {est.peak_mb:,.0f} MB (weights {est.weights_mb:,.0f}, AdamW + gradients "
+        f"{est.optimizer_mb:,.1f}, activations {est.activations_mb:,.0f}, process {est.overhead_mb:,.0f}); "
+        f"available {est.available_mb:,.0f} MB",
+        f"time: about {est.seconds_per_step:,.1f} s per step in fp32 ({est.flops_per_step / 1e9:,.0f} GFLOP; "
+        f"measured matmul {est.throughput_gflops['batched']:.1f} GFLOP/s batched, "
+        f"{est.throughput_gflops['decode']:.1f} decoding)",
+        f"fast settings: bf16 {'yes' if settings['bf16'] else 'no'} (cpu {settings['cpu_capability']}), "
+        f"int8 dynamic quantisation {'yes' if settings['int8_dynamic'] else 'no'}; base.precision = "
+        f"{precision!r}" + (f" (try base.precision = \"{settings['recommended_precision']}\")"
+                            if settings["recommended_precision"] != precision else ""),
+    ]
+    if est.warning:
+        lines.append(f"!! {est.warning}")
+    return lines

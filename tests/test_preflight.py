@@ -1,0 +1,257 @@
+"""Polarity preflight: AUROC against sklearn/scipy, the probe set, and a battery of real classifiers in
+their correct, label-swapped and sign-flipped forms."""
+
+from __future__ import annotations
+
+import json
+from dataclasses import asdict
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy.stats import mannwhitneyu
+from sklearn.metrics import roc_auc_score
+
+from alignrun.config import RewardSection
+from alignrun.errors import UserError
+from alignrun.preflight import auroc, builtin_probes, check_polarity, require_polarity, run_check
+from alignrun.reward import load_scorer
+from tests import tiny_classifiers as tc
+
+PROFANITY = "profanity_check.profanity_check:vectorizer,model"
+CALLABLES = "tests.tiny_classifiers"
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _one_thread():
+    with tc.one_torch_thread():
+        yield
+
+
+@pytest.fixture(scope="session")
+def zoo(tmp_path_factory):
+    """Every tiny HF classifier, in its correct form and with its label names swapped."""
+    root = tmp_path_factory.mktemp("classifiers")
+    swapped_root = tmp_path_factory.mktemp("swapped")
+    out = {}
+    for name in ("bert", "distilbert", "roberta", "multilabel", "random"):
+        folder = tc.shared_classifier(name, root)
+        out[name] = folder
+        out[f"{name}-swapped"] = tc.swap_label_names(folder, swapped_root / name)
+    return out
+
+
+# ------------------------------------------------------------------------------------------ AUROC
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 5), st.booleans()), min_size=2, max_size=40)
+       .filter(lambda rows: len({y for _, y in rows}) == 2))
+def test_auroc_matches_sklearn_and_mann_whitney(rows):
+    # Small integer scores make many ties; both references count a tie as half a pair.
+    scores = np.array([s for s, _ in rows], dtype=float)
+    y = np.array([h for _, h in rows])
+    ours = auroc(scores, y)
+    assert ours == pytest.approx(roc_auc_score(y, scores), abs=1e-12)  # sklearn.metrics.roc_auc_score
+    u = mannwhitneyu(scores[y], scores[~y], alternative="two-sided").statistic  # scipy: U of the first sample
+    assert ours == pytest.approx(u / (y.sum() * (~y).sum()), abs=1e-12)  # Hanley & McNeil 1982: U / (n1 n2)
+
+
+def test_auroc_worked_values():
+    # By hand: every positive above every negative -> 1; reversed -> 0; all tied -> 1/2.
+    assert auroc([0.9, 0.8, 0.1], [True, True, False]) == 1.0
+    assert auroc([0.1, 0.2, 0.9], [True, True, False]) == 0.0
+    assert auroc([0.3, 0.3, 0.3, 0.3], [True, False, True, False]) == 0.5
+    # pairs (pos, neg): (0.5, 0.5) tie = 1/2, (0.5, 0.2) = 1, (0.1, 0.5) = 0, (0.1, 0.2) = 0 -> 1.5 / 4
+    assert auroc([0.5, 0.1, 0.5, 0.2], [True, True, False, False]) == 0.375
+    with pytest.raises(ValueError):
+        auroc([0.1, 0.2], [True, True])
+
+
+# ------------------------------------------------------------------------------------------ probes
+
+
+def test_builtin_probes_are_balanced_distinct_and_judged_right_by_an_outside_classifier():
+    probes = builtin_probes()
+    harmful = [p.text for p in probes if p.harmful]
+    benign = [p.text for p in probes if not p.harmful]
+    assert len(harmful) >= 40 and len(benign) >= 40
+    assert len(set(harmful + benign)) == len(probes)
+    # alt-profanity-check was trained outside this project: it must agree which probes are harmful.
+    from profanity_check import predict_prob
+
+    assert roc_auc_score([1] * len(harmful) + [0] * len(benign), predict_prob(harmful + benign)) >= 0.9
+
+
+def test_training_texts_are_not_probe_texts():
+    texts, _ = tc.training_texts()
+    assert not {t.lower() for t in texts} & {p.text.lower() for p in builtin_probes()}
+
+
+def test_user_probe_files_are_added(tmp_path):
+    extra = tmp_path / "mine.jsonl"
+    extra.write_text('{"text": "the invoice is attached", "harmful": false}\n'
+                     '{"text": "you absolute buffoon", "harmful": true}\n')
+    section = RewardSection(backend="callable", source=f"{CALLABLES}:harm_probability", probes=[str(extra)])
+    report = check_polarity(load_scorer(section, "reward"), section)
+    base = builtin_probes()
+    assert report.n_harmful == sum(p.harmful for p in base) + 1
+    assert report.n_benign == sum(not p.harmful for p in base) + 1
+    assert report.probe_files == ["built-in", str(extra)]
+    assert report.probes[-1].text == "you absolute buffoon" and report.probes[-1].harmful
+
+
+# ----------------------------------------------------------------------------------------- battery
+# Each case: (name, section of the correct form, section of the label-swapped form, the fix expected).
+
+
+def _hf_cases(zoo):
+    cases = []
+    for name in ("bert", "distilbert", "roberta", "multilabel"):
+        benign, harmful = tc.CLASSIFIERS[name][1]
+        correct = RewardSection(source=str(zoo[name]), harmful_labels=[harmful])
+        # In the swapped copy the name `harmful` sits on the benign column; `benign` now names the harmful one.
+        swapped = RewardSection(source=str(zoo[f"{name}-swapped"]), harmful_labels=[harmful])
+        cases.append((name, correct, swapped, f'reward.harmful_labels = ["{benign}"]'))
+    return cases
+
+
+OTHER_CASES = [
+    ("alt-profanity-check",
+     RewardSection(backend="sklearn", source=PROFANITY, harmful_labels=["1"]),
+     RewardSection(backend="sklearn", source=PROFANITY, harmful_labels=["0"]),
+     'reward.harmful_labels = ["1"]'),
+    ("callable-columns",
+     RewardSection(backend="callable", source=f"{CALLABLES}:class_probabilities", harmful_index=1),
+     RewardSection(backend="callable", source=f"{CALLABLES}:class_probabilities", harmful_index=0),
+     "reward.harmful_index = 1"),
+    ("callable-harm",
+     RewardSection(backend="callable", source=f"{CALLABLES}:harm_probability"),
+     RewardSection(backend="callable", source=f"{CALLABLES}:benign_probability"),
+     None),
+]
+
+
+def _all_cases(zoo):
+    return _hf_cases(zoo) + OTHER_CASES
+
+
+def _check(section: RewardSection):
+    return check_polarity(load_scorer(section, "reward"), section)
+
+
+def test_battery_correct_forms_pass_with_every_transform(zoo):
+    for name, correct, _, _ in _all_cases(zoo):
+        for transform in ("neg-harm", "logit-margin", "log-odds"):
+            report = _check(correct.model_copy(update={"transform": transform}))
+            assert report.verdict == "ok", (name, transform, report.message)
+            assert report.auroc >= 0.8 and report.reward_auroc >= 0.8 and report.gap > 0, name
+
+
+def test_battery_label_swapped_forms_are_inverted_and_the_fix_works(zoo):
+    for name, _, swapped, fix in _all_cases(zoo):
+        report = _check(swapped)
+        assert report.verdict == "inverted", (name, report.message)
+        assert report.suggestion == fix, name
+        if fix is None:
+            assert "return P(harmful)" in report.message
+            continue
+        assert fix in report.message
+        key, value = fix.removeprefix("reward.").split(" = ")
+        fixed = swapped.model_copy(update={key: json.loads(value)})
+        assert _check(fixed).verdict == "ok", name
+
+
+def test_battery_negated_transform_is_sign_wrong(zoo):
+    for name, correct, _, _ in _all_cases(zoo):
+        report = _check(correct.model_copy(update={"scale": -1.0}))
+        assert report.verdict == "sign-wrong", (name, report.message)
+        assert report.suggestion == "reward.scale = 1.0 instead of -1.0"
+        assert report.reward_auroc <= 0.2 and report.auroc >= 0.8
+
+
+def test_random_weight_classifier_is_uninformative(zoo):
+    report = _check(RewardSection(source=str(zoo["random"]), harmful_labels=["hostile"]))
+    assert report.verdict == "uninformative", report.message
+    assert "does not separate" in report.message and "wasted" in report.message
+
+
+def test_constant_scores_are_uninformative():
+    report = _check(RewardSection(backend="callable", source=f"{CALLABLES}:constant_half"))
+    assert report.verdict == "uninformative" and report.auroc == 0.5
+    assert "same harm score 0.5" in report.message
+
+
+def test_more_than_two_classes_suggests_the_best_separating_class(fake_module_three_classes):
+    # Columns: 0 = P(benign), 1 = noise, 2 = P(harm). Naming column 0 harmful is inverted; column 2 is the fix.
+    section = RewardSection(backend="callable", source="fake_three:probs", harmful_index=0)
+    report = _check(section)
+    assert report.verdict == "inverted" and report.suggestion == "reward.harmful_index = 2"
+    assert report.label_aurocs["2"] > report.label_aurocs["1"]
+    # With only noise in the other columns, the message says no class separates well.
+    noise_only = _check(RewardSection(backend="callable", source="fake_three:noise", harmful_index=0))
+    assert noise_only.verdict == "inverted" and "No other class separates the harmful probes well" in noise_only.message
+
+
+@pytest.fixture
+def fake_module_three_classes(monkeypatch):
+    import sys
+    import types
+
+    module = types.ModuleType("fake_three")
+
+    def probs(texts):
+        harm = tc.harm_probability(texts)
+        noise = np.random.default_rng(0).uniform(0, 1, len(texts))
+        return np.stack([1 - harm, noise, harm], axis=1)
+
+    def noise(texts):
+        benign = 1 - tc.harm_probability(texts)
+        rng = np.random.default_rng(0)
+        return np.stack([benign, rng.uniform(0, 1, len(texts)), rng.uniform(0, 1, len(texts))], axis=1)
+
+    module.probs, module.noise = probs, noise
+    monkeypatch.setitem(sys.modules, "fake_three", module)
+
+
+def test_clip_that_flattens_the_reward_is_sign_wrong():
+    # neg-harm clipped to [-0.001, 0.001]: almost every probe gets -0.001, so the reward ranks nothing.
+    section = RewardSection(backend="sklearn", source=PROFANITY, harmful_labels=["1"], clip=0.001)
+    report = _check(section)
+    assert report.verdict == "sign-wrong" and "reward.clip" in report.suggestion
+
+
+# ------------------------------------------------------------------------------- files and commands
+
+
+def test_report_is_json_and_require_polarity_stops_unless_forced(tmp_path):
+    inverted = RewardSection(backend="callable", source=f"{CALLABLES}:class_probabilities", harmful_index=0)
+    scorer = load_scorer(inverted, "reward")
+    with pytest.raises(UserError) as info:
+        require_polarity(scorer, inverted, tmp_path / "run", force=False)
+    assert info.value.exit_code == 3 and "inverted" in str(info.value) and "--force" in str(info.value)
+    saved = json.loads((tmp_path / "run" / "preflight.json").read_text())
+    assert saved["verdict"] == "inverted" and not saved["forced"] and len(saved["probes"]) == saved["n_harmful"] + saved["n_benign"]
+    forced = require_polarity(scorer, inverted, tmp_path / "forced", force=True)
+    assert forced.forced and json.loads((tmp_path / "forced" / "preflight.json").read_text())["forced"]
+    ok = RewardSection(backend="callable", source=f"{CALLABLES}:class_probabilities", harmful_index=1)
+    report = require_polarity(load_scorer(ok, "reward"), ok, tmp_path / "ok", force=True)
+    assert report.verdict == "ok" and not report.forced
+    json.dumps(asdict(report), allow_nan=False)
+
+
+def test_run_check_prints_the_verdict_and_returns_the_exit_code(tmp_path, capsys):
+    config = tmp_path / "exp.toml"
+    config.write_text(
+        '[base]\nmodel = "unused-base"\n[data]\nprompts = "prompts.jsonl"\n'
+        f'[reward]\nbackend = "callable"\nsource = "{CALLABLES}:class_probabilities"\nharmful_index = 1\n'
+        "clip = 5.0\n"
+    )
+    assert run_check(config, [], tmp_path / "out") == 0
+    printed = capsys.readouterr().out
+    assert "verdict: ok" in printed and "CODE EXECUTION" in printed and "harm AUROC" in printed
+    assert "reward = 1.0 * (-P(class 1)) + 0.0, clipped to [-5, 5]" in printed
+    assert json.loads((tmp_path / "out" / "preflight.json").read_text())["verdict"] == "ok"
+    assert run_check(config, ["reward.harmful_index=0"], None) == 3
+    assert "reward.harmful_index = 1" in capsys.readouterr().out

@@ -1,0 +1,171 @@
+"""The policy-optimisation loop on tiny T5 and BART models built in the test session (never downloaded)."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+from peft import PeftModel
+from transformers import AutoModelForSeq2SeqLM, BertConfig, BertForSequenceClassification, T5Config, T5ForConditionalGeneration
+
+from alignrun.config import BaseSection, LoraSection, ReferenceSection, load_config
+from alignrun.errors import UserError
+from alignrun.models import build_policy, lora_targets, wrap_lora
+from alignrun.rollout import rollout
+from alignrun.trainer import run_experiment, step_prompts
+from tests import token_reward
+
+CPU = torch.device("cpu")
+
+
+def _write_config(folder: Path, model: Path, prompts: list[str], **sections: dict) -> Path:
+    (folder / "prompts.jsonl").write_text("".join(json.dumps({"prompt": p}) + "\n" for p in prompts))
+    body = {
+        "base": {"model": str(model)},
+        "lora": {"rank": 4, "alpha": 8.0},
+        "reward": {"backend": "callable", "source": "tests.token_reward:harm"},
+        "kl": {"coef": 0.01},
+        "ppo": {"steps": 2, "prompts_per_step": 8, "minibatch": 4, "epochs": 2, "learning_rate": 5e-3},
+        "generation": {"max_new_tokens": 8, "max_prompt_tokens": 32},
+        "data": {"prompts": "prompts.jsonl", "heldout_share": 0.25},
+        "evaluation": {"samples_per_prompt": 2, "max_prompts": 4, "bootstrap_resamples": 100},
+    }
+    for name, values in sections.items():
+        body[name] = {**body.get(name, {}), **values}
+    import tomli_w
+
+    path = folder / "experiment.toml"
+    path.write_text(tomli_w.dumps(body))
+    return path
+
+
+PROMPTS = [f"Customer {i}: my order number {i * 7} has not arrived at the {['north', 'south', 'east'][i % 3]} depot."
+           for i in range(40)]
+
+
+def test_lora_trainable_count_matches_hu_et_al_worked_example() -> None:
+    # Hu et al. 2021: r * (d_in + d_out) per adapted matrix; REFERENCES.md worked example: a T5-small-shaped
+    # model with LoRA r=8 on q and v of all 36 attention blocks -> 36 * 8 * 1024 = 294,912 parameters.
+    cfg = T5Config(d_model=512, d_kv=64, num_heads=8, d_ff=2048, num_layers=6, num_decoder_layers=6, vocab_size=32128)
+    with torch.device("meta"):
+        model = T5ForConditionalGeneration(cfg)
+    assert lora_targets(model, "auto") == ["q", "v"]
+    lm = wrap_lora(model, LoraSection(rank=8))
+    trainable = sum(p.numel() for p in lm.parameters() if p.requires_grad)
+    assert trainable == 36 * 8 * (512 + 512) == 294_912
+
+
+@pytest.mark.parametrize("arch", ["t5", "bart"])
+def test_policy_equals_reference_at_step_zero_and_generation_logprobs_are_exact(tiny_models, arch) -> None:
+    # LoRA's B starts at zero (Hu et al. 2021), so policy and adapter-disabled reference agree exactly.
+    torch.manual_seed(0)
+    policy = build_policy(BaseSection(model=str(tiny_models[arch])), LoraSection(rank=4), ReferenceSection(), CPU)
+    ro = rollout(policy, PROMPTS[:6], 32, 10, CPU)
+    with policy.reference() as ref:  # one teacher-forced pass each: identical to the last bit
+        ref_logits = ref(input_ids=ro.prompt_ids, attention_mask=ro.prompt_mask, decoder_input_ids=ro.decoder_input).logits
+    assert torch.equal(ref_logits, policy.lm(input_ids=ro.prompt_ids, attention_mask=ro.prompt_mask,
+                                             decoder_input_ids=ro.decoder_input).logits)
+    # generation (KV cache) and the batched reference pass agree to float rounding
+    assert torch.allclose(ro.logp, ro.ref_logp, atol=1e-5)
+    # Old log-probs from the generation pass equal a teacher-forced forward (STACK-NOTES: within 1e-6).
+    logits, values = policy.net(ro.prompt_ids, ro.prompt_mask, ro.decoder_input)
+    forced = torch.log_softmax(logits.float(), -1).gather(-1, ro.response_ids.unsqueeze(-1)).squeeze(-1)
+    assert torch.allclose(forced * ro.response_mask, ro.logp, atol=1e-5)
+    assert torch.allclose(values * ro.response_mask, ro.values, atol=1e-5)
+
+
+def test_reference_shares_the_base_weights(tiny_models) -> None:
+    policy = build_policy(BaseSection(model=str(tiny_models["t5"])), LoraSection(rank=4), ReferenceSection(), CPU)
+    assert policy.reference_copy is None  # adapters-off: no second copy of the weights
+    with policy.reference() as ref:
+        assert ref is policy.lm
+
+
+def test_lora_target_errors_list_candidates(tiny_models) -> None:
+    model = AutoModelForSeq2SeqLM.from_pretrained(tiny_models["t5"])
+    with pytest.raises(UserError, match=r"lora.targets: query_proj not found .* its linear layers are: .*\bq\b"):
+        lora_targets(model, ["query_proj"])
+    assert lora_targets(model, "all-linear") == "all-linear"
+
+
+def test_base_model_errors(tmp_path: Path, tiny_models) -> None:
+    with pytest.raises(UserError, match="base.model"):
+        build_policy(BaseSection(model=str(tmp_path / "missing")), LoraSection(), ReferenceSection(), CPU)
+    clf = tmp_path / "clf"
+    BertForSequenceClassification(BertConfig(vocab_size=50, hidden_size=16, num_hidden_layers=1,
+                                             num_attention_heads=2, intermediate_size=32)).save_pretrained(clf)
+    with pytest.raises(UserError, match="not an encoder-decoder"):
+        build_policy(BaseSection(model=str(clf)), LoraSection(), ReferenceSection(), CPU)
+
+
+def test_step_prompts_cover_the_data_deterministically() -> None:
+    data = [f"p{i}" for i in range(10)]
+    first = [step_prompts(data, s, 4, seed=3) for s in range(5)]
+    assert first == [step_prompts(data, s, 4, seed=3) for s in range(5)]
+    assert sorted(sum(first[:2], []) + first[2][:2]) == sorted(data)  # one pass over the data before repeating
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("arch", ["t5", "bart"])
+def test_end_to_end_run_writes_every_file_and_the_adapter_reloads(tmp_path: Path, tiny_models, arch) -> None:
+    token_reward.configure(word="order")
+    cfg = load_config(_write_config(tmp_path, tiny_models[arch], PROMPTS))
+    out = tmp_path / "run"
+    report = run_experiment(cfg, out, quiet=True, force=True)
+    for name in ("config.toml", "environment.json", "preflight.json", "status.json", "metrics.jsonl",
+                 "eval_before.jsonl", "eval_after.jsonl", "pairs.jsonl", "pairs.csv", "report.json", "report.md",
+                 "adapter/adapter_config.json", "adapter/adapter_model.safetensors", "adapter/value_head.safetensors"):
+        assert (out / name).is_file(), name
+    assert json.loads((out / "status.json").read_text())["state"] == "finished"
+    rows = [json.loads(ln) for ln in (out / "metrics.jsonl").read_text().splitlines()]
+    assert [r["step"] for r in rows] == [1, 2]
+    assert {"reward_mean", "kl_mean", "beta", "policy_loss", "value_loss", "clip_frac", "entropy",
+            "approx_kl", "step_s", "tokens_per_s"} <= set(rows[0])
+    assert report["schema"] == "alignrun.report/1" and report["run"]["steps"] == 2
+    assert report["model"]["trainable_params"] > 0
+
+    # The saved adapter, loaded with peft on the base, reproduces the saved log-probs of the after-samples.
+    base = AutoModelForSeq2SeqLM.from_pretrained(tiny_models[arch]).eval()
+    model = PeftModel.from_pretrained(base, out / "adapter").eval()
+    from transformers import AutoTokenizer
+
+    tok = AutoTokenizer.from_pretrained(out / "adapter")
+    samples = [json.loads(ln) for ln in (out / "eval_after.jsonl").read_text().splitlines()]
+    samples = [s for s in samples if not s["greedy"]][:6]
+    start = model.config.decoder_start_token_id
+    for s in samples:
+        enc = tok([s["prompt"]], return_tensors="pt", truncation=True, max_length=32)
+        ids = torch.tensor([s["token_ids"]])
+        dec = torch.cat([torch.tensor([[start]]), ids[:, :-1]], dim=1)
+        with torch.no_grad():
+            logits = model(**enc, decoder_input_ids=dec).logits
+        logp = torch.log_softmax(logits.float(), -1).gather(-1, ids.unsqueeze(-1)).sum().item()
+        assert logp == pytest.approx(s["logp"], abs=1e-3)
+
+
+@pytest.mark.slow
+def test_reward_for_a_chosen_token_raises_its_frequency(tmp_path: Path, tiny_models) -> None:
+    """The loop really optimises: rewarding one token's text makes the policy emit that token more often."""
+    torch.manual_seed(0)
+    probe = build_policy(BaseSection(model=str(tiny_models["t5"])), LoraSection(rank=4), ReferenceSection(), CPU)
+    ro = rollout(probe, PROMPTS * 4, 32, 8, CPU)
+    counts = np.bincount(ro.response_ids[ro.response_mask.bool()].numpy(), minlength=len(probe.tokenizer))
+    wordlike = [len(probe.tokenizer.decode([i]).strip()) >= 3 for i in range(len(counts))]
+    counts[~np.array(wordlike)] = 0
+    token = int(counts.argmax())  # the word-like token the random base already emits most often
+    token_reward.configure(word=probe.tokenizer.decode([token]).strip())
+    cfg = load_config(_write_config(tmp_path, tiny_models["t5"], PROMPTS,
+                                    ppo={"steps": 25, "prompts_per_step": 16, "minibatch": 8, "learning_rate": 3e-2},
+                                    evaluation={"samples_per_prompt": 8, "max_prompts": 10}))
+    run_experiment(cfg, tmp_path / "run", quiet=True, force=True)
+
+    def frequency(name: str) -> float:
+        rows = [json.loads(ln) for ln in (tmp_path / "run" / name).read_text().splitlines()]
+        ids = [i for r in rows if not r["greedy"] for i in r["token_ids"]]
+        return ids.count(token) / len(ids)
+
+    before, after = frequency("eval_before.jsonl"), frequency("eval_after.jsonl")
+    assert after > 2 * before + 0.005, (token, before, after)
