@@ -98,7 +98,7 @@ def _dispatch(args: argparse.Namespace) -> int:
         return run_from_cli(args.config, args.overrides, out=args.out, resume=args.resume,
                             force=args.force, quiet=args.quiet)
     if args.command == "demo":
-        from alignrun.demo import run_demo
+        from alignrun.demo.run import run_demo
 
         return run_demo(out=args.out, quick=args.quick, quiet=args.quiet, overrides=args.overrides)
     if args.command == "sweep":

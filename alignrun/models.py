@@ -8,6 +8,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import torch
 from peft import LoraConfig, PeftModel, TaskType, get_peft_model, set_peft_model_state_dict
@@ -80,6 +81,9 @@ def load_base(section: BaseSection, device: torch.device) -> tuple[nn.Module, Pr
     except (OSError, ValueError) as exc:
         raise UserError(f"base.model: {section.model} has no usable tokenizer ({exc}); "
                         "save the tokenizer into the model folder") from None
+    if len(tokenizer) <= len(tokenizer.all_special_ids):  # transformers builds an empty one when files are missing
+        raise UserError(f"base.model: {section.model} has no tokenizer files (tokenizer.json, spiece.model, "
+                        "vocab.json ...); save the tokenizer into the model folder with tokenizer.save_pretrained")
     if tokenizer.pad_token_id is None or tokenizer.eos_token_id is None:
         raise UserError(f"base.model: the tokenizer of {section.model} needs pad and eos tokens")
     return model.to(device), tokenizer
@@ -163,7 +167,7 @@ class Policy:
 
 def wrap_lora(model: nn.Module, lora: LoraSection) -> PeftModel:
     """W' = W + (alpha/r) B A with B = 0 at the start, so the policy equals the base at step 0 (Hu et al. 2021)."""
-    peft_cfg = LoraConfig(task_type=TaskType.SEQ_2_SEQ_LM, r=lora.rank, lora_alpha=lora.alpha,
+    peft_cfg = LoraConfig(task_type=TaskType.SEQ_2_SEQ_LM, r=lora.rank, lora_alpha=lora.alpha,  # type: ignore[arg-type]
                           lora_dropout=lora.dropout, target_modules=lora_targets(model, lora.targets))
     lm = get_peft_model(model, peft_cfg)
     lm.eval()  # dropout stays off in rollouts and updates alike
@@ -178,7 +182,8 @@ def build_policy(base: BaseSection, lora: LoraSection, reference: ReferenceSecti
     if reference.mode == "copy":
         ref_copy = copy.deepcopy(model).eval().requires_grad_(False)
     lm = wrap_lora(model, lora)
-    head = ValueHead(model.config.d_model).to(device)
+    config: Any = model.config
+    head = ValueHead(int(getattr(config, "d_model", None) or config.hidden_size)).to(device)
     trainable = sum(p.numel() for p in lm.parameters() if p.requires_grad)
     total = sum(p.numel() for p in lm.parameters())
     return Policy(PolicyWithValue(lm, head), tokenizer, ref_copy, trainable, total)
@@ -190,7 +195,7 @@ def save_adapter(policy: Policy, folder: Path) -> None:
     tmp = folder.with_name(f".{folder.name}.tmp")
     if tmp.exists():
         _rmtree(tmp)
-    policy.lm.save_pretrained(tmp, safe_serialization=True)
+    policy.lm.save_pretrained(str(tmp), safe_serialization=True)
     policy.tokenizer.save_pretrained(tmp)
     save_file({k: v.detach().cpu().contiguous() for k, v in policy.net.value_head.state_dict().items()},
               tmp / "value_head.safetensors")

@@ -368,7 +368,11 @@ class CallableScorer:
                     "all finite and in [0, 1]")
         where = f"{self.key}.source = {self.source!r}"
         try:
-            out = np.asarray(self.function(list(texts)), dtype=float)
+            out = self.function(list(texts))
+        except Exception as exc:  # the user's own code failed; KeyboardInterrupt still passes
+            raise UserError(f"{where}: the function raised {type(exc).__name__}: {exc}") from exc
+        try:
+            out = np.asarray(out, dtype=float)
         except (TypeError, ValueError) as exc:
             raise UserError(f"{where}: returned something that is not an array of numbers ({exc}); "
                             f"expected {expected}") from None

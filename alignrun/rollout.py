@@ -29,7 +29,8 @@ class Rollout:
     texts: list[str]
 
     def select(self, idx: torch.Tensor) -> Rollout:
-        return Rollout(*(getattr(self, f)[idx] for f in _TENSORS), texts=[self.texts[i] for i in idx.tolist()])
+        picked = {f: getattr(self, f)[idx] for f in _TENSORS}
+        return Rollout(**picked, texts=[self.texts[i] for i in idx.tolist()])
 
 
 _TENSORS = ("prompt_ids", "prompt_mask", "decoder_input", "response_ids", "response_mask", "logp", "ref_logp", "values")

@@ -139,7 +139,7 @@ def save_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimiz
     """Adapter, value head, optimiser, KL controller, RNG states and data position (= step), atomically."""
     tmp = folder.with_name(f".{folder.name}.tmp")
     save_adapter(policy, tmp / "adapter")
-    np_state = np.random.get_state()
+    np_state: tuple[Any, ...] = np.random.get_state(legacy=True)  # type: ignore[assignment]
     torch.save({
         "step": step, "optimizer": optimizer.state_dict(), "kl_controller": controller.state_dict(),
         "rng_torch": torch.get_rng_state(), "rng_python": random.getstate(),

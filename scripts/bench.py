@@ -131,7 +131,7 @@ def experiment(model: Path, precision: str = "fp32", reference: str = "adapters-
         "base": {"model": str(model), "device": "cpu", "precision": precision},
         "lora": {"rank": RANK},
         "reference": {"mode": reference},
-        "reward": {"backend": "callable", "source": "__main__:length_harm"},
+        "reward": {"backend": "callable", "source": "bench:length_harm"},
         "ppo": {"prompts_per_step": PROMPTS, "minibatch": MINIBATCH, "epochs": epochs},
         "generation": {"max_new_tokens": NEW_TOKENS, "max_prompt_tokens": PROMPT_TOKENS},
         "data": {"prompts": "unused-by-the-bench"},
@@ -333,7 +333,8 @@ def cfg_vocab(model: Path) -> int:
 
 
 def measure_memory(model: Path, variant: str, epochs: int) -> dict[str, float]:
-    cmd = [sys.executable, __file__, "--child", variant, "--model", str(model), "--epochs", str(epochs)]
+    cmd = [sys.executable, __file__, "--child", variant, "--model", str(model), "--epochs", str(epochs),
+           "--threads", str(torch.get_num_threads())]
     done = subprocess.run(cmd, capture_output=True, text=True, check=False)
     if done.returncode != 0:
         raise RuntimeError(f"memory run {variant} on {model} failed:\n{done.stderr[-3000:]}")
@@ -420,13 +421,14 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--shapes", default="tiny,small,base", help="comma-separated, from: " + ", ".join(SHAPES))
     ap.add_argument("--out", default="bench-results/bench.json", help="where the JSON results go")
     ap.add_argument("--no-memory", action="store_true", help="skip the per-variant peak-RSS subprocesses")
+    ap.add_argument("--threads", type=int, default=0, help="torch threads (0: all cores)")
     ap.add_argument("--memory-epochs", type=int, default=1,
                     help="PPO epochs in the memory runs (activations are freed per minibatch, so 1 shows the peak)")
     ap.add_argument("--child", choices=VARIANTS, help=argparse.SUPPRESS)
     ap.add_argument("--model", type=Path, help=argparse.SUPPRESS)
     ap.add_argument("--epochs", type=int, default=EPOCHS, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
-    set_threads(0)
+    set_threads(args.threads)
     import transformers
 
     transformers.utils.logging.set_verbosity_error()
@@ -444,6 +446,7 @@ def main(argv: list[str] | None = None) -> int:
         "setup": {"prompts": PROMPTS, "prompt_tokens": PROMPT_TOKENS, "new_tokens": NEW_TOKENS,
                   "minibatch": MINIBATCH, "epochs": EPOCHS, "lora_rank": RANK, "lora_targets": "q,v",
                   "memory_epochs": args.memory_epochs, "threads": torch.get_num_threads(),
+                  "omp_wait_policy": os.environ.get("OMP_WAIT_POLICY", "(unset)"),
                   "torch": torch.__version__, "platform": platform.platform(),
                   "load_average_start": os.getloadavg()},
         "fast_settings": resources.fast_settings(), "shapes": {},
@@ -462,7 +465,7 @@ def main(argv: list[str] | None = None) -> int:
                 print(f"[{time.perf_counter() - started:6.0f}s] {name}: peak RSS per variant", flush=True)
                 entry["memory"] = {v: measure_memory(model, v, args.memory_epochs) for v in VARIANTS}
             results["shapes"][name] = entry
-            if name == "tiny" or name == shapes[0]:
+            if name == shapes[0]:  # the smallest shape asked for: tiny by default
                 results["bf16_check"] = bf16_logprob_check(model, shape.vocab)
     results["summary"] = summarise(results)
     results["setup"]["load_average_end"] = os.getloadavg()

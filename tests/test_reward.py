@@ -257,6 +257,17 @@ def test_callable_returning_the_wrong_thing(fake_module, returned, problem):
     assert problem in msg and "fake_scorers:score" in msg and "expected [4] harm probabilities" in msg
 
 
+def test_callable_that_raises_names_the_callable(fake_module):
+    def broken(texts):
+        raise RuntimeError("lookup table missing")
+
+    fake_module.score = broken
+    scorer = load_scorer(ScorerSection(backend="callable", source="fake_scorers:score"), "reward")
+    with pytest.raises(UserError, match=r"reward.source = 'fake_scorers:score': the function raised RuntimeError: "
+                                        "lookup table missing"):
+        scorer.score(TEXTS)
+
+
 def test_callable_class_probabilities_need_an_index(fake_module):
     fake_module.score = lambda texts: np.tile([0.3, 0.7], (len(texts), 1))
     unset = load_scorer(ScorerSection(backend="callable", source="fake_scorers:score"), "reward")

@@ -12,7 +12,7 @@
 Reward callables (use as reward.source = "tests.tiny_run:<name>" with backend = "callable"):
     keyword_harm       P(harm) from a list of words typical of insults; passes the polarity preflight
     keyword_judge      the same words without jitter (a cheap evaluation judge)
-    scripted_harm      keyword_harm that holds (sleeps) or returns NaN on chosen calls (environment variables)
+    scripted_harm      keyword_harm that holds (waits) or returns NaN on chosen calls (environment variables)
     constant_harm      0.5 for every text (an uninformative reward)
     raising_harm       raises RuntimeError (a broken user function)
     nan_harm / benign_share / harm_percent / one_too_many    other wrong outputs (NaN, inverted, 0-100, n+1)
@@ -84,8 +84,9 @@ def _env_int(name: str) -> int | None:
 def scripted_harm(texts: list[str]) -> np.ndarray:
     """keyword_harm, misbehaving on chosen calls of this process (numbered from 1, see call_of_step):
 
-        $ALIGNRUN_TEST_HOLD_AT = N       call N writes the file $ALIGNRUN_TEST_HOLD_MARK, then sleeps until
-                                         killed or interrupted: the process is held mid-step, after sampling
+        $ALIGNRUN_TEST_HOLD_AT = N       call N writes the file $ALIGNRUN_TEST_HOLD_MARK, then waits until
+                                         release_path(mark) exists (or the process is killed/interrupted):
+                                         the run is held mid-step, after sampling, before the update
         $ALIGNRUN_TEST_NAN_AT = N        calls N and later return NaN for every text
 
     With neither set it is keyword_harm, so a held or broken run and its clean twin share one config
@@ -94,13 +95,22 @@ def scripted_harm(texts: list[str]) -> np.ndarray:
     _CALLS["scripted"] += 1
     call = _CALLS["scripted"]
     if call == _env_int(HOLD_AT_ENV):
-        Path(os.environ[HOLD_MARK_ENV]).write_text(str(os.getpid()))
-        time.sleep(600)
-        raise RuntimeError("held for 600 s and never killed")
+        mark = Path(os.environ[HOLD_MARK_ENV])
+        mark.write_text(str(os.getpid()))
+        deadline = time.monotonic() + 600
+        while not release_path(mark).exists():
+            if time.monotonic() > deadline:
+                raise RuntimeError("held for 600 s and never released, killed or interrupted")
+            time.sleep(0.05)
     nan_at = _env_int(NAN_AT_ENV)
     if nan_at is not None and call >= nan_at:
         return np.full(len(texts), np.nan)
     return keyword_harm(texts)
+
+
+def release_path(mark: Path) -> Path:
+    """The file that lets a held scripted_harm call return."""
+    return Path(f"{mark}.release")
 
 
 def reset_call_counts() -> None:
