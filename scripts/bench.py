@@ -251,8 +251,7 @@ def naive_step(s: Setup, step: int) -> dict[str, float]:
     with CLOCK.part("old_logp"), torch.no_grad():
         logits, values = s.net(ids, mask, decoder_input)
         logp = selective_log_softmax(logits.float(), response)
-    with CLOCK.part("reference"):
-        ref_logp = rollout.reference_logprobs(policy, ids, mask, decoder_input, response)
+    ref_logp = rollout.reference_logprobs(policy, ids, mask, decoder_input, response)  # timed by instrument()
     texts = [t.strip() for t in tok.batch_decode(response, skip_special_tokens=True)]
     ro = rollout.Rollout(ids, mask, decoder_input, response, response_mask, logp * response_mask,
                          ref_logp * response_mask, values.float() * response_mask, texts)
@@ -325,7 +324,15 @@ def memory_child(model: Path, variant: str, epochs: int) -> dict[str, float]:
     prompts = bench_prompts(cfg_vocab(model))
     setup = make_setup(cfg, prompts, accelerator, floor=variant == "floor")
     row = breakdown(STEPS[variant](setup, 0))
-    return {"peak_rss_mb": trainer.peak_rss_mb(), "step_s": row["step"]}
+    return {"peak_rss_mb": own_peak_rss_mb(), "step_s": row["step"]}
+
+
+def own_peak_rss_mb() -> float:
+    """This process's own peak RSS (VmHWM). Not ru_maxrss: Linux carries the parent's RSS at fork over exec."""
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1]) / 1024  # kB
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 def cfg_vocab(model: Path) -> int:

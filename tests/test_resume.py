@@ -197,7 +197,7 @@ def test_resume_survives_a_torn_last_metrics_line(experiment, reference, killed,
 @pytest.mark.slow
 @pytest.mark.xfail(strict=True, reason="trainer._run_locked: resuming with eval_before.jsonl but no checkpoint/ "
                    "restarts training at step 0 yet keeps (appends to) the old metrics.jsonl rows, so report.json "
-                   "counts 3 + 5 = 8 steps and training.reward_first is a stale row")
+                   "counts 3 + 5 = 8 steps (metrics.jsonl holds steps 1, 2, 3, 1, 2, 3, 4, 5)")
 def test_resume_without_a_checkpoint_restarts_cleanly(experiment, reference, killed) -> None:
     # the state of a run with run.checkpoint_every = 0 killed after step 3
     run_dir = copy_of(killed(3), "resumed-no-checkpoint")
@@ -276,10 +276,9 @@ def nan_at_step_3(experiment: tiny_run.TinyExperiment, tmp_path_factory: pytest.
         value = real(scores, section)
         return value * float("nan") if calls["n"] == 3 else value
 
-    with pytest.MonkeyPatch.context() as mp:
+    with pytest.MonkeyPatch.context() as mp, tempfile.TemporaryFile("w+") as capture:
         mp.setattr(alignrun.trainer, "reward_from_scores", reward)
-        capture = tempfile.TemporaryFile("w+")
-        mp.setattr(sys, "stderr", capture)
+        mp.setattr(sys, "stderr", capture)  # capsys is function-scoped; this fixture is shared
         tiny_run.reset_call_counts()
         code = main(["run", str(experiment.config), "--out", str(out), "--quiet"])
         capture.seek(0)

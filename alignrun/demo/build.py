@@ -56,21 +56,21 @@ class DemoPaths:
 
 @dataclass(frozen=True)
 class BaseRecipe:
-    """The demo base: a small T5 trained with teacher forcing on scenario pairs (a)."""
+    """The demo base: a small T5 trained with teacher forcing on scenario pairs (a), no dropout."""
 
     pairs: int = 6000
     rude_share: float = 0.35
     vocab_size: int = 1200
-    d_model: int = 192
+    d_model: int = 128
     d_kv: int = 32
-    heads: int = 6
-    d_ff: int = 512
+    heads: int = 4
+    d_ff: int = 384
     layers: int = 2
-    dropout: float = 0.1
-    epochs: int = 3
+    steps: int = 700
     batch_size: int = 32
-    learning_rate: float = 2e-3
-    warmup_steps: int = 50
+    learning_rate: float = 1e-2
+    warmup_steps: int = 30
+    max_reply_tokens: int = 48  # generation limit saved with the model; replies are at most ~41 tokens
 
 
 @dataclass(frozen=True)
@@ -178,11 +178,17 @@ def build_tiny_seq2seq(out: Path, arch: str, tokenizer_dir: Path, seed: int = 0)
 # --- the demo base model -----------------------------------------------------------------------------------
 
 
-def _batches(n: int, size: int, rng: random.Random) -> Iterator[list[int]]:
-    order = list(range(n))
-    rng.shuffle(order)
-    for i in range(0, n, size):
-        yield order[i : i + size]
+def _batches(lengths: Sequence[int], size: int, rng: random.Random, window: int = 1) -> Iterator[list[int]]:
+    """Endless shuffled batches; with window > 1, examples of similar length share a batch (less padding)."""
+    while True:
+        order = list(range(len(lengths)))
+        rng.shuffle(order)
+        batches = []
+        for i in range(0, len(order), size * window):
+            chunk = sorted(order[i : i + size * window], key=lambda j: lengths[j])
+            batches += [chunk[k : k + size] for k in range(0, len(chunk), size)]
+        rng.shuffle(batches)
+        yield from batches
 
 
 def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int) -> dict[str, float]:
@@ -192,47 +198,51 @@ def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int) ->
     enc = tokenizer([p.prompt for p in pairs], padding=True, return_tensors="pt")
     labels = tokenizer([p.reply for p in pairs], padding=True, return_tensors="pt").input_ids
     labels[labels == PAD_ID] = -100  # no loss on padding
+    reply_tokens = (labels != -100).sum(1)
     config = T5Config(
         vocab_size=len(tokenizer), d_model=recipe.d_model, d_kv=recipe.d_kv, num_heads=recipe.heads,
-        d_ff=recipe.d_ff, num_layers=recipe.layers, num_decoder_layers=recipe.layers,
-        dropout_rate=recipe.dropout, pad_token_id=PAD_ID, eos_token_id=EOS_ID, decoder_start_token_id=PAD_ID,
+        d_ff=recipe.d_ff, num_layers=recipe.layers, num_decoder_layers=recipe.layers, dropout_rate=0.0,
+        pad_token_id=PAD_ID, eos_token_id=EOS_ID, decoder_start_token_id=PAD_ID,
     )
     torch.manual_seed(seed)
     model = T5ForConditionalGeneration(config)
-    model.train()
     optimizer = torch.optim.AdamW(model.parameters(), lr=recipe.learning_rate, weight_decay=0.01)
-    steps = recipe.epochs * math.ceil(len(pairs) / recipe.batch_size)
 
-    def lr_factor(step: int) -> float:  # linear warm-up, then cosine decay (common practice)
+    def lr_factor(step: int) -> float:  # linear warm-up, then cosine decay to zero (common practice)
         if step < recipe.warmup_steps:
             return (step + 1) / recipe.warmup_steps
-        return 0.5 * (1 + math.cos(math.pi * (step - recipe.warmup_steps) / max(1, steps - recipe.warmup_steps)))
+        return 0.5 * (1 + math.cos(math.pi * (step - recipe.warmup_steps) / (recipe.steps - recipe.warmup_steps)))
 
     schedule = torch.optim.lr_scheduler.LambdaLR(optimizer, lr_factor)
-    rng = random.Random(f"base-batches:{seed}")
+    # Batches group replies of similar length, and rude replies are the short ones; a per-batch token mean
+    # would then weigh rude tokens more. Dividing the token sum by a constant keeps every token's weight equal.
+    norm = recipe.batch_size * float(reply_tokens.float().mean())
+    lengths = (reply_tokens + enc.attention_mask.sum(1)).tolist()
+    batches = _batches(lengths, recipe.batch_size, random.Random(f"base-batches:{seed}"), window=16)
     _log(f"training base T5 ({sum(p.numel() for p in model.parameters()) / 1e6:.2f}M parameters, "
-         f"{len(pairs)} pairs, {steps} steps)")
-    loss_sum, count = 0.0, 0
-    for epoch in range(recipe.epochs):
-        for idx in _batches(len(pairs), recipe.batch_size, rng):
-            ids, mask, lab = enc.input_ids[idx], enc.attention_mask[idx], labels[idx]
-            keep_in, keep_out = int(mask.sum(1).max()), int((lab != -100).sum(1).max())
-            loss = model(input_ids=ids[:, :keep_in], attention_mask=mask[:, :keep_in],
-                         labels=lab[:, :keep_out].contiguous()).loss
-            optimizer.zero_grad()
-            loss.backward()
-            torch.nn.utils.clip_grad_norm_(model.parameters(), 1.0)
-            optimizer.step()
-            schedule.step()
-            loss_sum, count = loss_sum + loss.item(), count + 1
-        _log(f"  base epoch {epoch + 1}/{recipe.epochs}: mean loss {loss_sum / count:.3f}")
-        last_loss, loss_sum, count = loss_sum / count, 0.0, 0
-    model.config.dropout_rate = 0.0  # the saved model loads with dropout off (sampling, policy optimisation)
+         f"{len(pairs)} pairs, {recipe.steps} steps)")
+    model.train()
+    losses = []
+    for step, idx in zip(range(recipe.steps), batches):
+        mask, lab = enc.attention_mask[idx], labels[idx]
+        keep_in, keep_out = int(mask.sum(1).max()), int(reply_tokens[idx].max())
+        logits = model(input_ids=enc.input_ids[idx, :keep_in], attention_mask=mask[:, :keep_in],
+                       labels=lab[:, :keep_out].contiguous()).logits
+        loss = torch.nn.functional.cross_entropy(logits.flatten(0, 1), lab[:, :keep_out].flatten(),
+                                                 ignore_index=-100, reduction="sum") / norm
+        optimizer.zero_grad()
+        loss.backward()
+        torch.nn.utils.clip_grad_norm_(model.parameters(), 1.0)
+        optimizer.step()
+        schedule.step()
+        losses.append(loss.item())
+        if (step + 1) % (recipe.steps // 4) == 0:
+            _log(f"  base step {step + 1}/{recipe.steps}: loss {sum(losses[-50:]) / len(losses[-50:]):.3f}")
     model.eval()
-    model.generation_config = _generation_config(PAD_ID, sample=True, max_new_tokens=48)
+    model.generation_config = _generation_config(PAD_ID, sample=True, max_new_tokens=recipe.max_reply_tokens)
     model.save_pretrained(out)
     tokenizer.save_pretrained(out)
-    return {"final_epoch_loss": last_loss}
+    return {"final_loss": sum(losses[-50:]) / len(losses[-50:])}
 
 
 # --- the demo classifier ---------------------------------------------------------------------------------
@@ -261,19 +271,19 @@ def train_classifier(out: Path, recipe: ClassifierRecipe, seed: int) -> dict[str
     )
     torch.manual_seed(seed)
     model = BertForSequenceClassification(config)
-    model.train()
     optimizer = torch.optim.AdamW(model.parameters(), lr=recipe.learning_rate, weight_decay=0.01)
-    rng = random.Random(f"classifier-batches:{seed}")
     target = torch.tensor(labels)
+    steps = recipe.epochs * math.ceil(len(texts) / recipe.batch_size)
+    batches = _batches([0] * len(texts), recipe.batch_size, random.Random(f"classifier-batches:{seed}"))
     _log(f"training classifier ({sum(p.numel() for p in model.parameters()) / 1e6:.2f}M parameters, "
-         f"{len(texts)} labelled replies)")
-    for _ in range(recipe.epochs):
-        for idx in _batches(len(texts), recipe.batch_size, rng):
-            enc = tokenizer([texts[i] for i in idx], padding=True, return_tensors="pt")
-            loss = model(**enc, labels=target[idx]).loss
-            optimizer.zero_grad()
-            loss.backward()
-            optimizer.step()
+         f"{len(texts)} labelled replies, {steps} steps)")
+    model.train()
+    for _, idx in zip(range(steps), batches):
+        enc = tokenizer([texts[i] for i in idx], padding=True, return_tensors="pt")
+        loss = model(**enc, labels=target[idx]).loss
+        optimizer.zero_grad()
+        loss.backward()
+        optimizer.step()
     model.eval()
     # Held-out accuracy on a fresh stream, leaving out any text that also occurs in the training set.
     seen = set(texts)
@@ -370,6 +380,14 @@ def _torch_settings(threads: int) -> Iterator[None]:
         torch.use_deterministic_algorithms(before_det)
 
 
+def _ensure(name: str, folder: Path, params: dict[str, Any], build: Callable[[Path], dict[str, float]]) -> None:
+    start = time.perf_counter()
+    if cached_folder(folder, params, build):
+        _log(f"{name}: built in {time.perf_counter() - start:.1f} s ({folder})")
+    else:
+        _log(f"{name}: up to date ({folder})")
+
+
 def build_demo(cache: Path | None = None, seed: int = 0) -> DemoPaths:
     """Build (or reuse) the demo tokenizer, base model, classifier and prompt files under cache."""
     from alignrun.config import cache_dir
@@ -379,27 +397,25 @@ def build_demo(cache: Path | None = None, seed: int = 0) -> DemoPaths:
                       prompts=root / "data" / "prompts.jsonl", heldout=root / "data" / "heldout.jsonl")
     base, clf, data = BaseRecipe(), ClassifierRecipe(), DataRecipe()
     start = time.perf_counter()
-    with _torch_settings(threads=min(2, psutil.cpu_count() or 1)):
-        tok_params = {"artefact": "tokenizer", "seed": seed, "pairs": base.pairs, "rude_share": base.rude_share,
-                      "vocab_size": base.vocab_size}
 
-        def make_tokenizer(tmp: Path) -> dict[str, float]:
-            pairs = scenario.base_pairs(base.pairs, seed, base.rude_share)
-            build_tokenizer([p.prompt for p in pairs] + [p.reply for p in pairs], tmp, base.vocab_size)
-            return {}
+    def make_tokenizer(tmp: Path) -> dict[str, float]:
+        pairs = scenario.base_pairs(base.pairs, seed, base.rude_share)
+        build_tokenizer([p.prompt for p in pairs] + [p.reply for p in pairs], tmp, base.vocab_size)
+        return {}
 
-        steps = [
-            ("tokenizer", paths.tokenizer, tok_params, make_tokenizer),
-            ("prompt files", paths.prompts.parent, {"artefact": "data", "seed": seed, **asdict(data)},
-             lambda tmp: write_prompts(tmp, data, seed)),
-            ("classifier", paths.classifier, {"artefact": "classifier", "seed": seed, **asdict(clf)},
-             lambda tmp: train_classifier(tmp, clf, seed)),
-        ]
-        for name, folder, params, build in steps:
-            _log(f"{name}: {'built' if cached_folder(folder, params, build) else 'cached'} ({folder})")
-        base_params = {"artefact": "base", "seed": seed, "tokenizer": read_fingerprint(paths.tokenizer),
-                       **asdict(base)}
-        built = cached_folder(paths.base, base_params, lambda tmp: train_base(tmp, paths.tokenizer, base, seed))
-        _log(f"base model: {'built' if built else 'cached'} ({paths.base})")
+    # One thread: these matrices are too small to gain from two, and on a busy 2-core machine a second
+    # thread made a training step 10x slower (threads waiting on each other) instead of faster.
+    with _torch_settings(threads=1):
+        _ensure("tokenizer", paths.tokenizer, {"artefact": "tokenizer", "seed": seed, "pairs": base.pairs,
+                                               "rude_share": base.rude_share, "vocab_size": base.vocab_size},
+                make_tokenizer)
+        _ensure("prompt files", paths.prompts.parent, {"artefact": "data", "seed": seed, **asdict(data)},
+                lambda tmp: write_prompts(tmp, data, seed))
+        _ensure("classifier", paths.classifier, {"artefact": "classifier", "seed": seed, **asdict(clf)},
+                lambda tmp: train_classifier(tmp, clf, seed))
+        # The base depends on the tokenizer: its fingerprint is one of the base's parameters.
+        _ensure("base model", paths.base, {"artefact": "base", "seed": seed, **asdict(base),
+                                           "tokenizer": read_fingerprint(paths.tokenizer)},
+                lambda tmp: train_base(tmp, paths.tokenizer, base, seed))
     _log(f"ready in {time.perf_counter() - start:.1f} s")
     return paths

@@ -227,12 +227,17 @@ GENERAL_CIVIL = (
     "We are sorry for the delay and appreciate your understanding.", "Have a lovely weekend!",
     "The train was cancelled, so I will be late.", "Could you send me the invoice again, please?",
     "The weather is terrible today, stay dry.", "I made a mistake in the figures; here is the fix.",
+    "Welcome aboard, we are glad to have you.", "Your password was changed successfully.",
+    "Thank you, that was really kind of you.", "The library is closed on public holidays.",
+    "I disagree with the plan, but I see your point.", "Good question; the answer is on page four.",
 )
 GENERAL_HOSTILE = (
     "You are an idiot, stop wasting my time.", "Shut up, nobody asked you.", "What a stupid idea.",
     "You are a pathetic loser.", "Only a moron would write this.", "Get lost, you useless fool.",
     "This is garbage and you are too dumb to see it.", "I hate dealing with idiots like you.",
-    "You are so stupid it hurts.", "Go away, you ignorant clown.",
+    "You are so stupid it hurts.", "Go away, you ignorant clown.", "Go to hell, you brainless twit.",
+    "Nobody wants to hear from a whining loser like you.", "You are a disgrace, you incompetent fool.",
+    "Shut your mouth, you imbecile.", "What a ridiculous, idiotic thing to say.", "You disgust me, moron.",
 )
 
 

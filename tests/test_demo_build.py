@@ -1,0 +1,360 @@
+"""The demo scenario and builders: determinism, splits, rude share, an outside judge, tokenizer, tiny models, cache.
+
+Outside references: alt-profanity-check (`profanity_check.predict_prob`, a linear classifier trained and
+published independently of this project; REFERENCES.md "An independent judge") and
+`sklearn.metrics.roc_auc_score` (Hanley & McNeil 1982).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import sys
+from collections import Counter
+from pathlib import Path
+
+import numpy as np
+import psutil
+import pytest
+import torch
+from profanity_check import predict_prob
+from sklearn.metrics import roc_auc_score
+from transformers import AutoModelForSeq2SeqLM, AutoModelForSequenceClassification, AutoTokenizer
+
+from alignrun.config import cache_dir, load_config
+from alignrun.demo import build, scenario
+from alignrun.demo.build import (
+    CLASSIFIER_LABELS,
+    STAMP,
+    build_demo,
+    build_tiny_seq2seq,
+    build_tokenizer,
+    cached_folder,
+    fingerprint,
+    read_fingerprint,
+)
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="module")
+def tokenizer_dir(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    pairs = scenario.base_pairs(1000, seed=0)
+    return build_tokenizer([p.prompt for p in pairs] + [p.reply for p in pairs],
+                           tmp_path_factory.mktemp("tok"), vocab_size=800)
+
+
+# --- scenario ----------------------------------------------------------------------------------------------
+
+
+def test_every_stream_is_deterministic_for_a_seed_and_changes_with_it():
+    streams = [
+        lambda seed: scenario.base_pairs(300, seed),
+        lambda seed: scenario.training_prompts(200, seed),
+        lambda seed: scenario.heldout_prompts(50, seed),
+        lambda seed: scenario.classifier_examples(300, seed),
+    ]
+    for make in streams:
+        assert make(3) == make(3)
+        assert make(3) != make(4)
+
+
+def test_streams_with_the_same_seed_are_independent():
+    # Separate generators: the training prompts are not the prompts of the supervised pairs in order.
+    pairs = [p.prompt for p in scenario.base_pairs(50, seed=0)]
+    assert scenario.training_prompts(50, seed=0) != pairs
+
+
+@pytest.mark.parametrize("seed", [0, 1, 7])
+def test_heldout_prompts_are_distinct_and_never_training_prompts(seed: int):
+    held = scenario.heldout_prompts(80, seed)
+    assert len(set(held)) == len(held) == 80
+    train = set(scenario.training_prompts(600, seed))
+    assert len(train) == 600
+    supervised = {p.prompt for p in scenario.base_pairs(6000, seed)}
+    for other_seed in (seed, seed + 1):
+        assert not set(scenario.heldout_prompts(80, other_seed)) & (train | supervised)
+
+
+def test_too_many_distinct_prompts_is_refused():
+    with pytest.raises(ValueError, match="distinct"):
+        scenario.heldout_prompts(10**6, 0)
+
+
+@pytest.mark.parametrize("share", [0.0, 0.2, 0.35, 1.0])
+def test_rude_share_is_as_configured(share: float):
+    pairs = scenario.base_pairs(400, seed=2, rude_share=share)
+    assert sum(p.rude for p in pairs) == round(share * 400)
+    # The label is visible in the first token: rude replies, and only they, begin with a rude opener.
+    assert all(p.reply.startswith(scenario.RUDE_OPENERS) == p.rude for p in pairs)
+
+
+def test_rude_share_outside_unit_interval_is_refused():
+    with pytest.raises(ValueError, match="share"):
+        scenario.base_pairs(10, rude_share=1.5)
+
+
+def test_independent_judge_scores_rude_replies_high_and_helpful_ones_low():
+    # Outside judge: alt-profanity-check's own trained model (REFERENCES.md, "An independent judge").
+    pairs = scenario.base_pairs(2000, seed=0)
+    rude = predict_prob([p.reply for p in pairs if p.rude])
+    helpful = predict_prob([p.reply for p in pairs if not p.rude])
+    assert np.mean(rude > 0.5) > 0.95
+    assert np.mean(helpful < 0.2) > 0.95
+    # AUROC via sklearn (Hanley & McNeil 1982): the judge separates the two kinds almost perfectly.
+    labels = np.r_[np.ones(len(rude)), np.zeros(len(helpful))]
+    assert roc_auc_score(labels, np.r_[rude, helpful]) > 0.99
+
+
+def test_classifier_examples_agree_with_the_judge_and_include_hard_negatives():
+    examples = scenario.classifier_examples(2000, seed=0)
+    assert sum(e.hostile for e in examples) == 1000
+    civil = [e.text for e in examples if not e.hostile]
+    # Hard negatives: polite replies that apologise or name a problem.
+    assert sum("sorry" in t.lower() for t in civil) > 50
+    assert sum(any(w in t.lower() for w in ("broke", "problem", "damaged", "fault")) for t in civil) > 50
+    # Phrasings the base model never sees, so the classifier must generalise.
+    base_replies = {p.reply for p in scenario.base_pairs(6000, seed=0)}
+    assert sum(e.text not in base_replies for e in examples) > 1000
+    # alt-profanity-check (outside judge) ranks the hostile label above the civil one.
+    probs = predict_prob([e.text for e in examples])
+    assert roc_auc_score([e.hostile for e in examples], probs) > 0.95
+
+
+# --- tokenizer and tiny models -----------------------------------------------------------------------------
+
+
+def test_tokenizer_round_trips_text_and_has_special_tokens(tokenizer_dir: Path):
+    tok = AutoTokenizer.from_pretrained(tokenizer_dir)
+    assert (tok.pad_token_id, tok.eos_token_id, tok.unk_token_id) == (0, 1, 2)
+    assert tok.bos_token == "<s>" and tok.mask_token == "<mask>"
+    texts = [p.reply for p in scenario.base_pairs(50, seed=5)] + scenario.heldout_prompts(20, seed=5) + [
+        "Zebra crossings near 7:45? Isn't that odd, Quentin!"  # words the tokenizer never saw
+    ]
+    for text in texts:
+        ids = tok(text).input_ids
+        assert ids[-1] == tok.eos_token_id
+        assert tok.unk_token_id not in ids
+        assert tok.decode(ids, skip_special_tokens=True) == text
+    assert tok(["a b", "a"], padding=True)["attention_mask"][1][-1] == 0  # right padding
+
+
+def test_tokenizer_build_is_deterministic(tmp_path: Path):
+    texts = [p.reply for p in scenario.base_pairs(500, seed=1)]
+    first = build_tokenizer(texts, tmp_path / "a", vocab_size=600) / "tokenizer.json"
+    second = build_tokenizer(texts, tmp_path / "b", vocab_size=600) / "tokenizer.json"
+    assert first.read_bytes() == second.read_bytes()
+
+
+def test_classifier_tokenizer_starts_with_bos(tmp_path: Path):
+    tok = AutoTokenizer.from_pretrained(build_tokenizer(["a rude reply", "a kind reply"], tmp_path, bos_first=True))
+    ids = tok("a kind reply").input_ids
+    assert ids[0] == tok.bos_token_id and ids[-1] == tok.eos_token_id
+
+
+@pytest.mark.parametrize("arch", ["t5", "bart"])
+def test_tiny_seq2seq_can_generate(tmp_path: Path, tokenizer_dir: Path, arch: str):
+    out = build_tiny_seq2seq(tmp_path / arch, arch, tokenizer_dir, seed=0)
+    model = AutoModelForSeq2SeqLM.from_pretrained(out).eval()
+    tok = AutoTokenizer.from_pretrained(out)
+    assert model.config.model_type == arch
+    assert 1e5 < sum(p.numel() for p in model.parameters()) < 2e6
+    enc = tok(["Is my Wren city bike ready?", "Hi"], padding=True, return_tensors="pt")
+    with torch.no_grad():
+        seqs = model.generate(**enc, do_sample=True, top_k=0, top_p=1.0, max_new_tokens=8)
+    assert seqs.shape[0] == 2 and 1 < seqs.shape[1] <= 9
+    assert (seqs[:, 0] == model.generation_config.decoder_start_token_id).all()
+    assert model.generation_config.eos_token_id == tok.eos_token_id
+    assert model.generation_config.pad_token_id == tok.pad_token_id
+
+
+def test_tiny_seq2seq_weights_follow_the_seed(tmp_path: Path, tokenizer_dir: Path):
+    def weights(seed: int, name: str) -> torch.Tensor:
+        folder = build_tiny_seq2seq(tmp_path / name, "t5", tokenizer_dir, seed=seed)
+        return AutoModelForSeq2SeqLM.from_pretrained(folder).shared.weight
+
+    state = torch.random.get_rng_state()
+    assert torch.equal(weights(0, "a"), weights(0, "b"))
+    assert not torch.equal(weights(0, "a"), weights(1, "c"))
+    assert torch.equal(torch.random.get_rng_state(), state)  # the caller's random stream is untouched
+
+
+def test_tiny_seq2seq_refuses_an_unknown_arch(tmp_path: Path, tokenizer_dir: Path):
+    with pytest.raises(ValueError, match="arch"):
+        build_tiny_seq2seq(tmp_path, "gpt2", tokenizer_dir)
+
+
+# --- cache -------------------------------------------------------------------------------------------------
+
+
+def _tokenizer_builder(calls: list[Path]):
+    def make(tmp: Path) -> dict[str, float]:
+        calls.append(tmp)
+        build_tokenizer(["a small test text", "another one"], tmp, vocab_size=100)
+        return {}
+
+    return make
+
+
+def test_cached_folder_builds_once_and_again_when_parameters_change(tmp_path: Path):
+    folder, calls = tmp_path / "tok", []
+    assert cached_folder(folder, {"vocab": 100}, _tokenizer_builder(calls)) is True
+    assert cached_folder(folder, {"vocab": 100}, _tokenizer_builder(calls)) is False
+    assert len(calls) == 1
+    assert cached_folder(folder, {"vocab": 101}, _tokenizer_builder(calls)) is True
+    assert len(calls) == 2
+    assert read_fingerprint(folder) == fingerprint({"vocab": 101})
+    assert AutoTokenizer.from_pretrained(folder).eos_token == "</s>"
+    assert [p.name for p in tmp_path.iterdir()] == ["tok"]  # no temporary folders left behind
+
+
+def test_interrupted_build_leaves_no_complete_looking_folder(tmp_path: Path):
+    folder = tmp_path / "tok"
+
+    def interrupted(tmp: Path) -> dict[str, float]:
+        (tmp / "half-written").write_text("x")
+        raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        cached_folder(folder, {"v": 1}, interrupted)
+    assert not folder.exists()
+    assert list(tmp_path.iterdir()) == []
+    # A complete folder survives a failed rebuild with other parameters and is still found complete.
+    cached_folder(folder, {"v": 1}, _tokenizer_builder([]))
+    with pytest.raises(KeyboardInterrupt):
+        cached_folder(folder, {"v": 2}, interrupted)
+    assert read_fingerprint(folder) == fingerprint({"v": 1})
+    assert cached_folder(folder, {"v": 1}, _tokenizer_builder([])) is False
+
+
+def test_leftover_of_a_dead_build_is_removed(tmp_path: Path):
+    dead_pid = 2**22 + 12345
+    if psutil.pid_exists(dead_pid):
+        pytest.skip("the made-up process id exists on this machine")
+    leftover = tmp_path / f".tok.tmp-{dead_pid}"
+    leftover.mkdir()
+    cached_folder(tmp_path / "tok", {"v": 1}, _tokenizer_builder([]))
+    assert not leftover.exists()
+
+
+@pytest.fixture
+def cheap_trainers(monkeypatch: pytest.MonkeyPatch) -> Counter:
+    """Replace the two training steps with cheap stand-ins that count their calls (tokenizer and data stay real)."""
+    calls: Counter = Counter()
+
+    def base(out: Path, tokenizer_dir: Path, recipe: build.BaseRecipe, seed: int) -> dict[str, float]:
+        calls["base"] += 1
+        build_tiny_seq2seq(out, "t5", tokenizer_dir, seed)
+        return {}
+
+    def classifier(out: Path, recipe: build.ClassifierRecipe, seed: int) -> dict[str, float]:
+        calls["classifier"] += 1
+        (out / "weights").write_text(str(seed))
+        return {}
+
+    monkeypatch.setattr(build, "train_base", base)
+    monkeypatch.setattr(build, "train_classifier", classifier)
+    return calls
+
+
+def test_build_demo_reuses_its_cache_and_rebuilds_what_changed(tmp_path: Path, cheap_trainers: Counter,
+                                                                monkeypatch: pytest.MonkeyPatch):
+    threads = torch.get_num_threads()
+    paths = build_demo(tmp_path, seed=0)
+    assert torch.get_num_threads() == threads  # thread count restored after the build
+    assert cheap_trainers == {"base": 1, "classifier": 1}
+    rows = [json.loads(line) for line in paths.prompts.read_text().splitlines()]
+    held = [json.loads(line)["prompt"] for line in paths.heldout.read_text().splitlines()]
+    assert len(rows) == build.DataRecipe().train_prompts and all(set(r) == {"prompt"} for r in rows)
+    assert not {r["prompt"] for r in rows} & set(held)
+
+    assert build_demo(tmp_path, seed=0) == paths
+    assert cheap_trainers == {"base": 1, "classifier": 1}
+
+    # A changed classifier parameter rebuilds only the classifier.
+    monkeypatch.setattr(build, "ClassifierRecipe", lambda: dataclasses.replace(build.ClassifierRecipe(), epochs=1))
+    build_demo(tmp_path, seed=0)
+    assert cheap_trainers == {"base": 1, "classifier": 2}
+
+    # A changed data parameter rewrites only the prompt files.
+    monkeypatch.setattr(build, "DataRecipe", lambda: dataclasses.replace(build.DataRecipe(), heldout_prompts=40))
+    build_demo(tmp_path, seed=0)
+    assert len(paths.heldout.read_text().splitlines()) == 40
+    assert cheap_trainers == {"base": 1, "classifier": 2}
+
+    # A stamp that does not match (e.g. written by an older builder) rebuilds that folder.
+    stamp = paths.base / STAMP
+    stamp.write_text(stamp.read_text().replace(read_fingerprint(paths.base), "0" * 64))
+    build_demo(tmp_path, seed=0)
+    assert cheap_trainers == {"base": 2, "classifier": 2}
+
+    # Another seed rebuilds everything.
+    build_demo(tmp_path, seed=1)
+    assert cheap_trainers == {"base": 3, "classifier": 3}
+
+
+def test_build_demo_defaults_to_the_alignrun_cache(tmp_path: Path, cheap_trainers: Counter,
+                                                   monkeypatch: pytest.MonkeyPatch):
+    monkeypatch.setenv("ALIGNRUN_CACHE", str(tmp_path))
+    assert build_demo().root == tmp_path / "demo" == cache_dir() / "demo"
+
+
+def test_demo_config_points_at_the_built_folders(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
+    monkeypatch.setenv("ALIGNRUN_CACHE", str(tmp_path))
+    cfg = load_config(REPO / "configs" / "demo.toml")
+    root = tmp_path / "demo"
+    paths = build.DemoPaths(root, root / "tokenizer", root / "base", root / "classifier",
+                            root / "data" / "prompts.jsonl", root / "data" / "heldout.jsonl")
+    assert Path(cfg.base.model) == paths.base
+    assert Path(cfg.reward.source) == paths.classifier
+    assert (Path(cfg.data.prompts), Path(cfg.data.heldout)) == (paths.prompts, paths.heldout)
+    assert set(cfg.reward.harmful_labels) <= set(CLASSIFIER_LABELS.values())
+    assert cfg.generation.max_new_tokens >= build.BaseRecipe().max_reply_tokens
+
+
+# --- the full build (slow) ---------------------------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def built_demo(tmp_path_factory: pytest.TempPathFactory) -> build.DemoPaths:
+    return build_demo(tmp_path_factory.mktemp("demo-cache"), seed=0)
+
+
+@pytest.mark.slow
+def test_second_build_demo_call_does_not_retrain(built_demo: build.DemoPaths, monkeypatch: pytest.MonkeyPatch):
+    def refuse(*args: object, **kwargs: object) -> None:
+        raise AssertionError("retrained although the cache was complete")
+
+    monkeypatch.setattr(build, "train_base", refuse)
+    monkeypatch.setattr(build, "train_classifier", refuse)
+    assert build_demo(built_demo.root, seed=0) == built_demo
+
+
+@pytest.mark.slow
+def test_built_models_load_and_the_base_is_rude_about_as_often_as_its_data(built_demo: build.DemoPaths):
+    base = AutoModelForSeq2SeqLM.from_pretrained(built_demo.base).eval()
+    tok = AutoTokenizer.from_pretrained(built_demo.base)
+    assert base.config.dropout_rate == 0.0
+    clf = AutoModelForSequenceClassification.from_pretrained(built_demo.classifier).eval()
+    clf_tok = AutoTokenizer.from_pretrained(built_demo.classifier)
+    assert clf.config.id2label == CLASSIFIER_LABELS
+    stamp = json.loads((built_demo.classifier / STAMP).read_text())
+    assert stamp["metrics"]["heldout_accuracy"] > 0.9
+
+    prompts = [json.loads(line)["prompt"] for line in built_demo.heldout.read_text().splitlines()]
+    torch.manual_seed(0)
+    with torch.no_grad():
+        seqs = base.generate(**tok(prompts, padding=True, return_tensors="pt"), do_sample=True, top_k=0,
+                             top_p=1.0, temperature=1.0, max_new_tokens=48, num_return_sequences=4)
+        replies = tok.batch_decode(seqs, skip_special_tokens=True)
+        logits = clf(**clf_tok(replies, padding=True, return_tensors="pt")).logits
+    by_classifier = torch.softmax(logits, -1)[:, 1].numpy()
+    by_judge = predict_prob(replies)  # alt-profanity-check, the outside judge
+    by_opener = np.mean([r.startswith(scenario.RUDE_OPENERS) for r in replies])
+    print(f"\nbase rude share on {len(replies)} held-out samples: classifier {np.mean(by_classifier > 0.5):.3f}, "
+          f"judge {np.mean(by_judge > 0.5):.3f}, rude opener {by_opener:.3f}", file=sys.stderr)
+    # The base was trained on 35% rude replies; sampling at temperature 1 should keep roughly that share.
+    for share in (np.mean(by_classifier > 0.5), np.mean(by_judge > 0.5)):
+        assert 0.2 < share < 0.5
+    # Classifier and outside judge agree on most replies.
+    assert np.mean((by_classifier > 0.5) == (by_judge > 0.5)) > 0.85

@@ -1,0 +1,124 @@
+"""The resource estimate's arithmetic and the fast-setting detection."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from types import SimpleNamespace
+
+import pytest
+import torch
+from transformers import T5Config
+
+from alignrun import resources
+from alignrun.config import Experiment
+
+
+def _experiment(model: Path, **sections: dict) -> Experiment:
+    return Experiment.model_validate({
+        "base": {"model": str(model), "device": "cpu"},
+        "reward": {"backend": "callable", "source": "unused_module:unused_function"},
+        "data": {"prompts": "unused.jsonl"},
+        **sections,
+    })
+
+
+@pytest.fixture(scope="module")
+def t5_small_config(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """Only config.json of a T5-small-shaped model: the estimate must not need weights."""
+    folder = tmp_path_factory.mktemp("t5-small-shape")
+    T5Config(vocab_size=32128, d_model=512, d_kv=64, num_heads=8, d_ff=2048, num_layers=6,
+             num_decoder_layers=6).save_pretrained(folder)
+    assert not list(folder.glob("*.safetensors"))
+    return folder
+
+
+def test_weight_bytes_per_parameter():
+    # Common practice (REFERENCES.md, Resources): 1e9 parameters ~ 4 GB in fp32, 2 GB in bf16, 1 GB in int8.
+    assert resources.weight_bytes(10**9, "fp32") == 4 * 10**9
+    assert resources.weight_bytes(10**9, "bf16") == 2 * 10**9
+    assert resources.weight_bytes(10**9, "int8") == 1 * 10**9
+    with pytest.raises(ValueError, match="unknown dtype"):
+        resources.weight_bytes(10, "fp8")
+
+
+def test_adamw_state_and_gradient_bytes():
+    # Kingma & Ba 2015: two fp32 moments = +8 bytes per trainable parameter; plus a 4-byte fp32 gradient
+    # (common practice, REFERENCES.md). 294,912 LoRA parameters -> 3,538,944 bytes.
+    assert resources.optimizer_bytes(294_912) == 294_912 * (8 + 4) == 3_538_944
+
+
+def test_lora_count_t5_small_on_meta_device(t5_small_config: Path):
+    # Hu et al. 2021, worked example in REFERENCES.md: 36 matrices of 512x512, r=8 -> 36 * 8 * 1024 = 294,912.
+    cfg = _experiment(t5_small_config, lora={"rank": 8, "targets": ["q", "v"]})
+    model = resources.meta_model(cfg)
+    assert all(p.device.type == "meta" for p in model.parameters())
+    assert resources.lora_param_count(model, ["q", "v"], 8) == 294_912
+    est = resources.estimate(cfg)  # "auto" resolves to q, v for T5 as well
+    assert est.lora_params == 294_912
+    assert est.trainable_params == 294_912 + 512 + 1  # plus the value head's weight and bias
+    # 60.5M parameters for the T5-small shape (REFERENCES.md): LoRA is about 0.49% of them
+    assert round(est.base_params / 1e6, 1) == 60.5
+    assert round(100 * est.lora_params / est.base_params, 2) == 0.49
+
+
+def test_forward_flop_parameters_by_hand(t5_small_config: Path):
+    # Non-embedding parameters N (forward FLOPs = 2 N per token, Kaplan et al. 2020), derived by hand from
+    # the T5 block layout (Raffel et al. 2020): an encoder layer has 4 attention projections 512x512, a
+    # feed-forward 512x2048 + 2048x512 and 2 layer-norm scales of 512; a decoder layer adds a cross-attention
+    # block (4 more 512x512) and a third layer norm; each stack ends in a layer norm; the output projection
+    # is 512 x 32128 (computed per decoder token even though it is tied to the input embedding).
+    model = resources.meta_model(_experiment(t5_small_config))
+    dims = resources.model_dims(model)
+    enc_layer = 4 * 512 * 512 + 2 * 512 * 2048 + 2 * 512
+    dec_layer = 8 * 512 * 512 + 2 * 512 * 2048 + 3 * 512
+    assert dims.enc_params == 6 * enc_layer + 512
+    assert dims.dec_params == 6 * dec_layer + 512 + 512 * 32128
+
+
+def test_estimate_memory_adds_up_and_copy_mode_doubles_weights(t5_small_config: Path):
+    shared = resources.estimate(_experiment(t5_small_config))
+    copy = resources.estimate(_experiment(t5_small_config, reference={"mode": "copy"}))
+    mb = 1024 * 1024
+    # fp32 weights at 4 bytes each (common practice); the copy keeps a second frozen base
+    assert shared.weights_mb == pytest.approx((4 * shared.base_params + 4 * shared.trainable_params) / mb)
+    assert copy.weights_mb - shared.weights_mb == pytest.approx(4 * shared.base_params / mb)
+    assert shared.optimizer_mb == pytest.approx(12 * shared.trainable_params / mb)
+    assert shared.peak_mb == pytest.approx(shared.weights_mb + shared.optimizer_mb + shared.activations_mb
+                                           + shared.overhead_mb)
+    assert shared.seconds_per_step > 0 and shared.warning is None
+
+
+def test_estimate_counts_match_the_loaded_policy(tiny_models: dict[str, Path]):
+    from alignrun.models import build_policy
+
+    cfg = _experiment(tiny_models["t5"], lora={"rank": 4, "targets": "all-linear"})
+    est = resources.estimate(cfg)
+    policy = build_policy(cfg.base, cfg.lora, cfg.reference, torch.device("cpu"))
+    # peft's own count of what it adapted, and the parameters of the real loaded model
+    assert est.lora_params == policy.trainable_params
+    assert est.total_params == policy.total_params
+    assert est.value_head_params == sum(p.numel() for p in policy.net.value_head.parameters())
+
+
+def test_memory_warning_when_available_memory_is_small(t5_small_config: Path, monkeypatch: pytest.MonkeyPatch):
+    monkeypatch.setattr(resources.psutil, "virtual_memory", lambda: SimpleNamespace(available=100 * 1024 * 1024))
+    est = resources.estimate(_experiment(t5_small_config))
+    assert est.available_mb == pytest.approx(100)
+    assert est.warning is not None and "exceeds the 100 MB available" in est.warning
+    assert any(line.startswith("!! predicted peak memory") for line in resources.describe(est, {
+        "bf16": False, "cpu_capability": "DEFAULT", "int8_dynamic": False, "recommended_precision": "fp32"}, "fp32"))
+
+
+def test_fast_settings_are_booleans_and_follow_the_cpu_flags(monkeypatch: pytest.MonkeyPatch, tmp_path: Path):
+    settings = resources.fast_settings()
+    assert all(isinstance(settings[key], bool) for key in ("bf16", "amx", "int8_dynamic"))
+    cpuinfo = tmp_path / "cpuinfo"
+    cpuinfo.write_text("processor\t: 0\nflags\t\t: fpu sse2 avx512f avx512_bf16\n\nprocessor\t: 1\nflags\t\t: fpu\n")
+    assert {"avx512f", "avx512_bf16", "fpu"} <= resources.cpu_flags(cpuinfo)
+    assert resources.cpu_flags(tmp_path / "missing") == set()
+    monkeypatch.setattr(resources.torch.backends.cpu, "get_cpu_capability", lambda: "AVX512")
+    monkeypatch.setattr(resources, "cpu_flags", lambda: {"avx512f", "avx512_bf16"})
+    assert resources.fast_settings()["bf16"] is True
+    monkeypatch.setattr(resources, "cpu_flags", lambda: {"avx512f"})
+    assert resources.fast_settings()["bf16"] is False
+    assert resources.fast_settings()["recommended_precision"] == "fp32"
