@@ -30,6 +30,12 @@ QUERY_VALUE = {
 }
 
 
+# A saved tokenizer has at least one of these (fast JSON, WordPiece/BPE vocabularies, sentencepiece); without
+# them transformers 5 quietly builds a tokenizer with no vocabulary.
+_TOKENIZER_FILES = ("tokenizer.json", "vocab.txt", "vocab.json", "spiece.model", "sentencepiece.bpe.model",
+                    "tokenizer.model")
+
+
 def pick_device(section: BaseSection) -> torch.device:
     if section.device == "cuda" and not torch.cuda.is_available():
         raise UserError("base.device = 'cuda' but no GPU is visible; use 'auto' or 'cpu'")
@@ -54,7 +60,10 @@ def _hub_hint(source: str, exc: Exception) -> str:
     offline = os.environ.get("HF_HUB_OFFLINE") == "1" or os.environ.get("TRANSFORMERS_OFFLINE") == "1"
     looks_local = source.startswith((".", "/", "~")) or os.sep in source and Path(source).parent.exists()
     if looks_local:
-        return f"folder {source} does not exist or is not a model folder"
+        if Path(source).expanduser().is_dir():
+            first = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
+            return f"folder {source} is not a loadable model folder: {first}"
+        return f"folder {source} does not exist; fix the path"
     return (f"{source!r} is not a local folder and could not be loaded from the hub cache"
             f"{' (offline mode is on)' if offline else ''}: {exc}. Download it where you have a connection "
             "and point base.model at the folder")
@@ -76,14 +85,15 @@ def load_base(section: BaseSection, device: torch.device) -> tuple[nn.Module, Pr
         model = AutoModelForSeq2SeqLM.from_pretrained(section.model, **kwargs)
     except ValueError as exc:
         raise UserError(f"base.model: {section.model} cannot be loaded as a seq2seq language model: {exc}") from None
+    local = Path(section.model).expanduser()
+    if local.is_dir() and not any((local / name).is_file() for name in _TOKENIZER_FILES):
+        raise UserError(f"base.model: {section.model} has no tokenizer files (none of {', '.join(_TOKENIZER_FILES)}); "
+                        "save the tokenizer into the model folder with tokenizer.save_pretrained(folder)")
     try:
         tokenizer = AutoTokenizer.from_pretrained(section.model, **kwargs)
     except (OSError, ValueError) as exc:
         raise UserError(f"base.model: {section.model} has no usable tokenizer ({exc}); "
                         "save the tokenizer into the model folder") from None
-    if len(tokenizer) <= len(tokenizer.all_special_ids):  # transformers builds an empty one when files are missing
-        raise UserError(f"base.model: {section.model} has no tokenizer files (tokenizer.json, spiece.model, "
-                        "vocab.json ...); save the tokenizer into the model folder with tokenizer.save_pretrained")
     if tokenizer.pad_token_id is None or tokenizer.eos_token_id is None:
         raise UserError(f"base.model: the tokenizer of {section.model} needs pad and eos tokens")
     return model.to(device), tokenizer

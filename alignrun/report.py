@@ -53,16 +53,21 @@ CAUTIONS = [
 def write_text_atomic(path: Path, text: str) -> None:
     """Write via a temporary file in the same folder, then rename: readers never see half a file."""
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    tmp = None
     try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(text)
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
+    except BaseException as exc:
+        if tmp is not None:
+            Path(tmp).unlink(missing_ok=True)
+        if isinstance(exc, OSError):
+            raise UserError(f"{path}: could not write the file ({exc.strerror or exc}); free disk space or fix the "
+                            "folder's permissions") from None
         raise
 
 
@@ -123,7 +128,10 @@ class RunFolder:
         self.locked = False
 
     def acquire(self) -> None:
-        self.path.mkdir(parents=True, exist_ok=True)
+        try:
+            self.path.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise UserError(f"{self.path}: cannot create the run folder ({exc.strerror}); choose another --out") from None
         if not os.access(self.path, os.W_OK):
             raise UserError(f"{self.path}: run folder is not writable; choose another --out")
         me = {"pid": os.getpid(), "host": socket.gethostname(), "since": time.strftime("%Y-%m-%dT%H:%M:%S")}
@@ -132,6 +140,11 @@ class RunFolder:
                 fd = os.open(self.lock_path, os.O_CREAT | os.O_EXCL | os.O_WRONLY)
             except FileExistsError:
                 owner = self._owner()
+                if owner is None:
+                    raise UserError(
+                        f"{self.lock_path}: the lock file is empty or damaged (left by a run that crashed while "
+                        f"taking it?); if no alignrun process is using {self.path}, delete it and run again"
+                    ) from None
                 if owner and owner.get("host") == me["host"] and not _pid_alive(int(owner.get("pid", -1))):
                     self.lock_path.unlink(missing_ok=True)  # stale: its process is gone
                     continue

@@ -2,11 +2,14 @@
 
 from __future__ import annotations
 
+import contextlib
 import json
 import platform
 import random
 import resource
+import signal
 import sys
+import threading
 import time
 from pathlib import Path
 from typing import Any
@@ -78,7 +81,7 @@ def ppo_update(net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerat
             vl, vclip = ppo.value_loss(values.float(), part.values, returns[idx], mask, p.value_clip)
             loss = pl + p.value_weight * vl
             if not torch.isfinite(loss):
-                raise NonFinite(f"loss is {loss.item()} at step {step}")
+                raise NonFinite(f"loss is {loss.item()} at step {step + 1}")
             optimizer.zero_grad(set_to_none=True)
             accelerator.backward(loss)
             accelerator.clip_grad_norm_(net.parameters(), p.max_grad_norm)
@@ -106,10 +109,13 @@ def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Opti
     with autocast(cfg.base.precision, device):
         ro = rollout(policy, prompts, cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens, device)
     t1 = time.perf_counter()
-    scores = scorer.score(ro.texts)
+    try:
+        scores = scorer.score(ro.texts)
+    except UserError as exc:  # e.g. a callable that returned NaN: same guard as a NaN reward
+        raise NonFinite(f"the reward backend failed at step {step + 1}: {exc}") from None
     reward = torch.tensor(reward_from_scores(scores, cfg.reward), dtype=torch.float32, device=device)
     if not torch.isfinite(reward).all():
-        raise NonFinite(f"the reward backend returned NaN/inf at step {step}")
+        raise NonFinite(f"the reward backend returned NaN/inf at step {step + 1}")
     t2 = time.perf_counter()
     rewards, kl = ppo.penalised_rewards(reward, ro.logp, ro.ref_logp, ro.response_mask, controller.beta)
     advantages, returns = ppo.gae(rewards, ro.values, ro.response_mask, cfg.ppo.gamma, cfg.ppo.gae_lambda)
@@ -171,9 +177,8 @@ def load_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimiz
 
 
 def _truncate_metrics(path: Path, step: int) -> None:
-    if path.exists():
-        keep = [ln for ln in path.read_text().splitlines() if ln.strip() and json.loads(ln)["step"] <= step]
-        write_text_atomic(path, "".join(ln + "\n" for ln in keep))
+    keep = [row for row in _read_metrics(path) if row["step"] <= step]
+    write_text_atomic(path, "".join(json.dumps(row) + "\n" for row in keep))
 
 
 # ---------------------------------------------------------------- the run
@@ -199,7 +204,8 @@ def run_experiment(cfg: Experiment, out: Path, *, resume: bool = False, force: b
         raise UserError(f"{out}: run folder already holds a run ({folder.status() or {}}); "
                         f"continue it with --resume {out}, or choose another --out")
     if resume and not (out / "checkpoint" / "checkpoint.json").exists() and not (out / "eval_before.jsonl").exists():
-        raise UserError(f"{out}: nothing to resume (no checkpoint/ and no eval_before.jsonl); start a new run")
+        raise UserError(f"{out}: nothing to resume (no checkpoint/ and no eval_before.jsonl: the run stopped before "
+                        "training); delete the folder or choose another --out for a new run")
     accelerator = Accelerator(cpu=pick_device(cfg.base).type == "cpu")
     main = accelerator.is_main_process
     with folder if main else _NoLock():
@@ -258,13 +264,13 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
         ckpt = out / "checkpoint"
         if resume and (ckpt / "checkpoint.json").exists():
             step = load_checkpoint(ckpt, policy, optimizer, controller)
-            if main:
-                _truncate_metrics(out / "metrics.jsonl", step)
+        if resume and main:
+            _truncate_metrics(out / "metrics.jsonl", step)  # rows after the checkpoint (all, without one) are redone
         history = _read_metrics(out / "metrics.jsonl") if resume else []
         per_proc = cfg.ppo.prompts_per_step // accelerator.num_processes
         bar = _progress(cfg.ppo.steps, step, quiet or not main)
         try:
-            with open(out / "metrics.jsonl", "a" if resume else "w", encoding="utf-8") as log:
+            with _StopAtStepEnd(main) as stop, open(out / "metrics.jsonl", "a" if resume else "w", encoding="utf-8") as log:
                 while step < cfg.ppo.steps:
                     prompts = step_prompts(split.train, step, cfg.ppo.prompts_per_step, cfg.run.seed)
                     mine = prompts[accelerator.process_index * per_proc:(accelerator.process_index + 1) * per_proc]
@@ -274,8 +280,8 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                         if main:
                             save_checkpoint(ckpt, policy, optimizer, controller, step)
                             save_adapter(policy, out / "adapter")
-                        raise UserError(f"stopped: {exc}. The last good adapter and checkpoint (step {step}) are "
-                                        f"kept in {out}; lower ppo.learning_rate or check the reward backend") from None
+                        raise UserError(f"stopped: {exc}. The last good adapter and checkpoint (after step {step}) "
+                                        f"are kept in {out}; lower ppo.learning_rate or check the reward backend") from None
                     step += 1
                     history.append(row)
                     if main:
@@ -287,6 +293,10 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                     bar.update(1)
                     bar.set_postfix(reward=f"{row['reward_mean']:.3f}", kl=f"{row['kl_mean']:.3f}",
                                     beta=f"{row['beta']:.3f}")
+                    if stop.requested:
+                        if main:
+                            save_checkpoint(ckpt, policy, optimizer, controller, step)
+                        raise KeyboardInterrupt
         finally:
             bar.close()
         if main:
@@ -299,27 +309,65 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
             report = build_report(cfg=cfg, before=before, after=after, history=history, policy=policy,
                                   polarity=polarity, scorer=scorer, judge=judge, split=split,
                                   wall_s=time.time() - started, peak_rss_mb=peak_rss_mb(), started=started)
-            write_report(out, report, before, after)
+            try:
+                write_report(out, report, before, after)
+            except UserError as exc:
+                raise UserError(f"{exc}\n  training finished and is kept in {out} (adapter/, checkpoint/ at step "
+                                f"{step}); fix this, then write the report with: alignrun run CONFIG --resume {out}",
+                                exc.exit_code) from None
             folder.set_status("finished", step=step)
         accelerator.wait_for_everyone()
         return report
     except KeyboardInterrupt:
         if main:
             folder.set_status("interrupted", step=step)
-            if "policy" in locals() and "optimizer" in locals():
-                save_checkpoint(out / "checkpoint", policy, optimizer, controller, step)
             print(f"\ninterrupted at step {step}; continue with: alignrun run CONFIG --resume {out}", file=sys.stderr)
         raise
     except BaseException as exc:
         if main:
-            folder.set_status("failed", step=step, error=str(exc).splitlines()[0][:500])
+            with contextlib.suppress(Exception):  # a full disk must not hide the first error behind a second
+                folder.set_status("failed", step=step, error=(str(exc).splitlines() or [type(exc).__name__])[0][:500])
         raise
 
 
+class _StopAtStepEnd:
+    """Ctrl-C during training: finish the current step, checkpoint it and stop (a second Ctrl-C stops at once,
+    keeping the previous checkpoint), so a resumed run continues exactly where this one stopped."""
+
+    def __init__(self, active: bool):
+        self.active = active and threading.current_thread() is threading.main_thread()
+        self.requested = False
+
+    def __enter__(self) -> _StopAtStepEnd:
+        if self.active:
+            self.previous = signal.signal(signal.SIGINT, self._handle)
+        return self
+
+    def _handle(self, signum: int, frame: object) -> None:
+        if self.requested:
+            raise KeyboardInterrupt
+        self.requested = True
+        print("\nalignrun: stopping after this step (Ctrl-C again to stop now)", file=sys.stderr, flush=True)
+
+    def __exit__(self, *exc: object) -> None:
+        if self.active:
+            signal.signal(signal.SIGINT, self.previous)
+
+
 def _read_metrics(path: Path) -> list[dict[str, float]]:
+    """metrics.jsonl rows; a torn last line (a crash mid-append) is dropped, its step is redone on resume."""
     if not path.exists():
         return []
-    return [json.loads(ln) for ln in path.read_text().splitlines() if ln.strip()]
+    lines = [ln for ln in path.read_text().splitlines() if ln.strip()]
+    rows = []
+    for n, line in enumerate(lines, 1):
+        try:
+            rows.append(json.loads(line))
+        except json.JSONDecodeError:
+            if n == len(lines):
+                break
+            raise UserError(f"{path}: line {n} is not valid JSON; the metrics file is damaged") from None
+    return rows
 
 
 def _evaluate_once(path: Path, policy: Policy, prompts: list[str], scorer: Any, judge: Any, cfg: Experiment,
@@ -337,6 +385,7 @@ def _evaluate_once(path: Path, policy: Policy, prompts: list[str], scorer: Any, 
             result = evaluation.evaluate_policy(policy, prompts, scorer, judge, cfg, device)
     if main:
         evaluation.write_samples(path, result)
+        return evaluation.read_samples(path)  # the very numbers a resumed run reads back
     return result
 
 

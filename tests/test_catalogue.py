@@ -6,7 +6,6 @@ failed run; status.json says "failed" when this run created the folder; an exist
 
 Most rows call `alignrun.cli.main(argv)` in-process (the same code path as the `alignrun` script, minus
 interpreter start-up); the SUBPROCESS rows and the --debug test run `python -m alignrun` for real.
-Rows that expose a bug in alignrun/ are strict xfails with the reason; the report lists the fix.
 """
 
 from __future__ import annotations
@@ -87,7 +86,6 @@ class Case:
     subprocess: bool = False
     existing_run: bool = False  # the run folder holds a finished run before the command: it must stay intact
     status_written: bool = True  # False when the failure is that nothing can be written
-    xfail: str | None = None
     marks: tuple[Any, ...] = field(default_factory=tuple)
 
 
@@ -265,14 +263,9 @@ CASES: list[Case] = [
     Case("base-is-decoder-only", "models", lambda ws: ws.run(("base.model", str(ws.classifiers["gpt2"]))),
          ("base.model", "'gpt2' model, not an encoder-decoder")),
     Case("base-no-tokenizer", "models", lambda ws: ws.run(("base.model", str(base_without_tokenizer(ws)))),
-         ("base.model", "t5-no-tokenizer", "tokenizer", "save the tokenizer into the model folder"),
-         xfail="models.load_base: for a folder without tokenizer files transformers 5 builds a T5Tokenizer with "
-               "no vocabulary (104 entries, 103 of them special), so the check len(tokenizer) <= "
-               "len(all_special_ids) passes, every word becomes <unk> and the run reports success (exit 0)"),
+         ("base.model", "t5-no-tokenizer", "tokenizer", "save the tokenizer into the model folder")),
     Case("base-corrupt-config", "models",
-         lambda ws: ws.run(("base.model", str(corrupt_config(ws)))), ("base.model", "broken-model", "config.json"),
-         xfail="models._hub_hint answers every local load error with 'does not exist or is not a model folder', "
-               "hiding transformers' own first line (config.json is not valid JSON) that names the broken file"),
+         lambda ws: ws.run(("base.model", str(corrupt_config(ws)))), ("base.model", "broken-model", "config.json")),
     Case("reward-folder-missing", "models", lambda ws: ws.run(*hf_reward(ws.root / "no-clf", harmful_labels=["hostile"])),
          ("reward.source", "{root}/no-clf", "does not exist", "fix the path")),
     Case("reward-is-seq2seq", "models", lambda ws: ws.run(*hf_reward(ws.models["t5"], harmful_labels=["hostile"])),
@@ -323,10 +316,7 @@ CASES: list[Case] = [
     Case("run-failed-preflight-rerun", "run folder", lambda ws: (failed_preflight_run(ws), ws.run(CONSTANT_REWARD))[1],
          ("{out}", "already holds a run", "another --out")),
     Case("resume-failed-preflight", "run folder", lambda ws: (failed_preflight_run(ws), ws.run(CONSTANT_REWARD, extra=("--resume", str(ws.out))))[1],
-         ("{out}", "nothing to resume", "another --out"),
-         xfail="trainer.run_experiment says 'nothing to resume ...; start a new run', but a new run into the same "
-               "--out is refused because status.json exists: the message must say to delete the folder or use "
-               "another --out"),
+         ("{out}", "nothing to resume", "another --out")),
     Case("resume-not-a-run-folder", "run folder", lambda ws: ws.run(extra=("--resume", str(ws.root))),
          ("--resume {root}", "no config.toml there", "run folder")),
     Case("resume-different-config", "run folder",
@@ -334,25 +324,16 @@ CASES: list[Case] = [
          ("--resume {out}", "differs from the run's saved config.toml", "same config"), existing_run=True),
     Case("out-under-a-file", "run folder",
          lambda ws: ["run", str(ws.config()), "--out", str(ws.file("plain-file", "x") / "run"), "--quiet"],
-         ("plain-file/run", "--out"),
-         xfail="report.RunFolder.acquire calls self.path.mkdir without catching OSError: NotADirectoryError "
-               "reaches cli.main as 'internal error' instead of a UserError naming the folder"),
+         ("plain-file/run", "--out")),
     Case("out-read-only", "run folder", lambda ws: read_only_out(ws), ("{out}", "not writable", "another --out"),
          marks=(pytest.mark.skipif(os.geteuid() == 0, reason=ROOT_XFAIL),)),
     Case("disk-full-from-start", "run folder", lambda ws: (disk_full_for(ws, None), ws.run())[1],
-         ("{out}", "No space left on device"), status_written=False,
-         xfail="report.write_text_atomic lets OSError(ENOSPC) through, and the trainer's failure handler then "
-               "fails again writing status.json: cli.main prints 'internal error ... this is a bug'"),
+         ("{out}", "No space left on device"), status_written=False),
     Case("disk-full-at-report", "run folder", lambda ws: (disk_full_for(ws, {"report.json"}), ws.run())[1],
          ("{out}/report.json", "No space left on device", "--resume"),
-         xfail="report.write_text_atomic lets OSError(ENOSPC) through: cli.main prints 'internal error ... this is "
-               "a bug' instead of naming report.json and saying the adapter is kept and --resume finishes it",
          marks=(pytest.mark.slow,)),
     Case("damaged-lock", "run folder", lambda ws: (ws.file("run/.lock", ""), ws.run())[1],
-         ("{out}/.lock", "delete"),
-         xfail="report.RunFolder.acquire treats an unreadable .lock (empty: a crash between O_CREAT and the "
-               "write) as a live owner 'pid ? on ?' forever and says 'wait for it': it must name the lock file "
-               "and say to delete it when no run is active"),
+         ("{out}/.lock", "delete")),
     Case("run-subprocess-bad-data", "run folder", lambda ws: ws.data("bad.jsonl", '{"prompt": "a"}\n[1, 2]\n'),
          ("bad.jsonl", "line 2", "not a JSON object"), subprocess=True, marks=(pytest.mark.slow,)),
     # ------------------------------------------------------------------------- command line
@@ -413,10 +394,7 @@ def _invoke(case: Case, argv: list[str], ws: Workspace, capsys: pytest.CaptureFi
 def _params() -> list[Any]:
     out = []
     for case in CASES:
-        marks = list(case.marks)
-        if case.xfail:
-            marks.append(pytest.mark.xfail(strict=True, reason=case.xfail))
-        out.append(pytest.param(case, id=f"{case.group.replace(' ', '-')}:{case.id}", marks=marks))
+        out.append(pytest.param(case, id=f"{case.group.replace(' ', '-')}:{case.id}", marks=list(case.marks)))
     return out
 
 

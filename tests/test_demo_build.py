@@ -33,6 +33,7 @@ from alignrun.demo.build import (
     fingerprint,
     read_fingerprint,
 )
+from alignrun.errors import UserError
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -78,7 +79,7 @@ def test_heldout_prompts_are_distinct_and_never_training_prompts(seed: int):
 
 def test_too_many_distinct_prompts_is_refused():
     with pytest.raises(ValueError, match="distinct"):
-        scenario.heldout_prompts(10**6, 0)
+        scenario.heldout_prompts(5000, 0)
 
 
 @pytest.mark.parametrize("share", [0.0, 0.2, 0.35, 1.0])
@@ -272,12 +273,14 @@ def test_build_demo_reuses_its_cache_and_rebuilds_what_changed(tmp_path: Path, c
     assert cheap_trainers == {"base": 1, "classifier": 1}
 
     # A changed classifier parameter rebuilds only the classifier.
-    monkeypatch.setattr(build, "ClassifierRecipe", lambda: dataclasses.replace(build.ClassifierRecipe(), epochs=1))
+    one_epoch = dataclasses.replace(build.ClassifierRecipe(), epochs=1)
+    monkeypatch.setattr(build, "ClassifierRecipe", lambda: one_epoch)
     build_demo(tmp_path, seed=0)
     assert cheap_trainers == {"base": 1, "classifier": 2}
 
     # A changed data parameter rewrites only the prompt files.
-    monkeypatch.setattr(build, "DataRecipe", lambda: dataclasses.replace(build.DataRecipe(), heldout_prompts=40))
+    fewer = dataclasses.replace(build.DataRecipe(), heldout_prompts=40)
+    monkeypatch.setattr(build, "DataRecipe", lambda: fewer)
     build_demo(tmp_path, seed=0)
     assert len(paths.heldout.read_text().splitlines()) == 40
     assert cheap_trainers == {"base": 1, "classifier": 2}
@@ -297,6 +300,13 @@ def test_build_demo_defaults_to_the_alignrun_cache(tmp_path: Path, cheap_trainer
                                                    monkeypatch: pytest.MonkeyPatch):
     monkeypatch.setenv("ALIGNRUN_CACHE", str(tmp_path))
     assert build_demo().root == tmp_path / "demo" == cache_dir() / "demo"
+
+
+def test_unusable_cache_folder_is_a_user_error(tmp_path: Path):
+    blocker = tmp_path / "a-file"
+    blocker.write_text("not a folder")
+    with pytest.raises(UserError, match="ALIGNRUN_CACHE"):
+        build_demo(blocker / "demo")
 
 
 def test_demo_config_points_at_the_built_folders(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):

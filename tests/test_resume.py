@@ -162,9 +162,6 @@ def test_sigkill_after_step_k_then_resume_is_exact(k: int, experiment, reference
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="evaluation.evaluate_policy keeps float32 arrays, while a resumed run reads "
-                   "eval_before.jsonl back as float64: before.guards.perplexity_under_reference differs in the 8th "
-                   "digit (sum of ref_nll in float32 vs float64)")
 def test_resumed_report_equals_uninterrupted_report_in_every_number(experiment, reference, killed) -> None:
     run_dir = copy_of(killed(3), "resumed-full")
     assert resume(experiment.config, run_dir) == 0
@@ -182,9 +179,6 @@ def test_resume_drops_metrics_rows_written_after_the_checkpoint(experiment, refe
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="trainer._truncate_metrics json-parses every line: a torn last line of "
-                   "metrics.jsonl (power loss or full disk mid-append) makes --resume fail with "
-                   "'internal error: JSONDecodeError' instead of dropping the torn row")
 def test_resume_survives_a_torn_last_metrics_line(experiment, reference, killed, capsys) -> None:
     run_dir = copy_of(killed(3), "resumed-torn")
     with open(run_dir / "metrics.jsonl", "a") as fh:
@@ -195,9 +189,6 @@ def test_resume_survives_a_torn_last_metrics_line(experiment, reference, killed,
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="trainer._run_locked: resuming with eval_before.jsonl but no checkpoint/ "
-                   "restarts training at step 0 yet keeps (appends to) the old metrics.jsonl rows, so report.json "
-                   "counts 3 + 5 = 8 steps (metrics.jsonl holds steps 1, 2, 3, 1, 2, 3, 4, 5)")
 def test_resume_without_a_checkpoint_restarts_cleanly(experiment, reference, killed) -> None:
     # the state of a run with run.checkpoint_every = 0 killed after step 3
     run_dir = copy_of(killed(3), "resumed-no-checkpoint")
@@ -207,9 +198,6 @@ def test_resume_without_a_checkpoint_restarts_cleanly(experiment, reference, kil
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="a kill between the two renames in trainer.save_checkpoint leaves only "
-                   ".checkpoint.old; resume then restarts at step 0 and keeps the old metrics rows (8 steps "
-                   "reported)")
 def test_resume_after_a_kill_inside_checkpoint_renames(experiment, reference, killed) -> None:
     run_dir = copy_of(killed(3), "resumed-renames")
     (run_dir / "checkpoint").rename(run_dir / ".checkpoint.old")
@@ -253,9 +241,6 @@ def test_sigint_marks_interrupted_and_resume_completes(interrupted) -> None:
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="trainer._run_locked's KeyboardInterrupt handler saves a checkpoint from "
-                   "the middle of a step (RNG already advanced by the rollout, and after any optimizer.step of a "
-                   "partly done update) labelled as the last finished step, so the resumed run samples differently")
 def test_sigint_then_resume_is_exact(interrupted, reference) -> None:
     out, _ = interrupted
     assert training_numbers(out) == training_numbers(reference)
@@ -300,16 +285,12 @@ def test_nan_reward_stops_and_keeps_the_last_good_checkpoint_and_adapter(nan_at_
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="trainer.train_step numbers the failing step from 0 ('NaN/inf at step 2' "
-                   "for the third step) while metrics.jsonl, status.json and the progress bar count from 1")
 def test_nan_message_names_the_failing_step(nan_at_step_3) -> None:
     _, _, err = nan_at_step_3
     assert re.search(r"\bat step 3\b", err), err
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="reward.CallableScorer.score raises UserError on NaN before the trainer's "
-                   "NonFinite guard sees it: the message names no step and adapter/ is not saved")
 def test_nan_from_a_callable_backend_is_caught_by_the_guard(experiment, tmp_path, monkeypatch, capsys) -> None:
     monkeypatch.setenv(tiny_run.NAN_AT_ENV, str(tiny_run.call_of_step(3)))
     tiny_run.reset_call_counts()

@@ -9,7 +9,13 @@ import numpy as np
 import pytest
 import torch
 from peft import PeftModel
-from transformers import AutoModelForSeq2SeqLM, BertConfig, BertForSequenceClassification, T5Config, T5ForConditionalGeneration
+from transformers import (
+    AutoModelForSeq2SeqLM,
+    BertConfig,
+    BertForSequenceClassification,
+    T5Config,
+    T5ForConditionalGeneration,
+)
 
 from alignrun.config import BaseSection, LoraSection, ReferenceSection, load_config
 from alignrun.errors import UserError

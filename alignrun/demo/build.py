@@ -10,6 +10,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import os
 import random
 import shutil
 import string
@@ -37,9 +38,10 @@ from transformers import (
 )
 
 from alignrun.demo import scenario
+from alignrun.errors import UserError
 
 SPECIAL_TOKENS = ("<pad>", "</s>", "<unk>", "<s>", "<mask>")  # ids 0..4 in every tokenizer built here
-PAD_ID, EOS_ID, UNK_ID, BOS_ID, MASK_ID = range(5)
+PAD_ID, EOS_ID, BOS_ID = (SPECIAL_TOKENS.index(t) for t in ("<pad>", "</s>", "<s>"))
 STAMP = "demo-build.json"
 CLASSIFIER_LABELS = {0: "civil", 1: "hostile"}
 
@@ -140,26 +142,28 @@ def _generation_config(decoder_start: int, sample: bool, max_new_tokens: int) ->
                             max_new_tokens=max_new_tokens, **extra)
 
 
+def _t5_config(vocab: int, **sizes: int) -> T5Config:
+    """A T5 config without dropout, as many decoder as encoder layers, and this module's special token ids."""
+    config = T5Config(vocab_size=vocab, dropout_rate=0.0, pad_token_id=PAD_ID, eos_token_id=EOS_ID, **sizes)
+    config.decoder_start_token_id = PAD_ID  # T5 starts decoding from the pad token (Raffel et al. 2020; from memory)
+    return config
+
+
 def build_tiny_seq2seq(out: Path, arch: str, tokenizer_dir: Path, seed: int = 0) -> Path:
     """A randomly initialised tiny T5 or BART (a few hundred K parameters) saved with its tokenizer."""
     tokenizer = AutoTokenizer.from_pretrained(tokenizer_dir)
     vocab = len(tokenizer)
     if arch == "t5":
-        # T5 starts decoding from the pad token (Raffel et al. 2020).
-        config: T5Config | BartConfig = T5Config(
-            vocab_size=vocab, d_model=64, d_kv=16, num_heads=4, d_ff=128, num_layers=2, num_decoder_layers=2,
-            dropout_rate=0.0, pad_token_id=PAD_ID, eos_token_id=EOS_ID, decoder_start_token_id=PAD_ID,
-        )
+        config: T5Config | BartConfig = _t5_config(vocab, d_model=64, d_kv=16, num_heads=4, d_ff=128, num_layers=2)
         model_cls: type = T5ForConditionalGeneration
         start = PAD_ID
     elif arch == "bart":
-        # BART starts decoding from </s> (Lewis et al. 2020, as in its released configs).
+        # BART starts decoding from </s>, as its released configs do (Lewis et al. 2020; from memory).
         config = BartConfig(
             vocab_size=vocab, d_model=64, encoder_layers=2, decoder_layers=2, encoder_attention_heads=4,
             decoder_attention_heads=4, encoder_ffn_dim=128, decoder_ffn_dim=128, max_position_embeddings=256,
             dropout=0.0, attention_dropout=0.0, activation_dropout=0.0, pad_token_id=PAD_ID,
-            bos_token_id=BOS_ID, eos_token_id=EOS_ID, decoder_start_token_id=EOS_ID, forced_bos_token_id=None,
-            forced_eos_token_id=None,
+            bos_token_id=BOS_ID, eos_token_id=EOS_ID, decoder_start_token_id=EOS_ID, forced_eos_token_id=None,
         )
         model_cls = BartForConditionalGeneration
         start = EOS_ID
@@ -199,11 +203,8 @@ def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int) ->
     labels = tokenizer([p.reply for p in pairs], padding=True, return_tensors="pt").input_ids
     labels[labels == PAD_ID] = -100  # no loss on padding
     reply_tokens = (labels != -100).sum(1)
-    config = T5Config(
-        vocab_size=len(tokenizer), d_model=recipe.d_model, d_kv=recipe.d_kv, num_heads=recipe.heads,
-        d_ff=recipe.d_ff, num_layers=recipe.layers, num_decoder_layers=recipe.layers, dropout_rate=0.0,
-        pad_token_id=PAD_ID, eos_token_id=EOS_ID, decoder_start_token_id=PAD_ID,
-    )
+    config = _t5_config(len(tokenizer), d_model=recipe.d_model, d_kv=recipe.d_kv, num_heads=recipe.heads,
+                        d_ff=recipe.d_ff, num_layers=recipe.layers)
     torch.manual_seed(seed)
     model = T5ForConditionalGeneration(config)
     optimizer = torch.optim.AdamW(model.parameters(), lr=recipe.learning_rate, weight_decay=0.01)
@@ -351,8 +352,8 @@ def cached_folder(folder: Path, params: dict[str, Any], build: Callable[[Path], 
         return False
     folder.parent.mkdir(parents=True, exist_ok=True)
     _remove_leftovers(folder)
-    tmp = folder.with_name(f".{folder.name}.tmp-{psutil.Process().pid}")
-    old = folder.with_name(f".{folder.name}.old-{psutil.Process().pid}")
+    tmp = folder.with_name(f".{folder.name}.tmp-{os.getpid()}")
+    old = folder.with_name(f".{folder.name}.old-{os.getpid()}")
     shutil.rmtree(tmp, ignore_errors=True)
     tmp.mkdir()
     try:
@@ -395,6 +396,13 @@ def build_demo(cache: Path | None = None, seed: int = 0) -> DemoPaths:
     root = Path(cache) if cache is not None else cache_dir() / "demo"
     paths = DemoPaths(root=root, tokenizer=root / "tokenizer", base=root / "base", classifier=root / "classifier",
                       prompts=root / "data" / "prompts.jsonl", heldout=root / "data" / "heldout.jsonl")
+    try:
+        root.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise UserError(f"demo cache {root}: cannot create the folder ({exc.strerror}); "
+                        "set ALIGNRUN_CACHE to a writable folder") from None
+    if not os.access(root, os.W_OK):
+        raise UserError(f"demo cache {root}: the folder is not writable; set ALIGNRUN_CACHE to a writable folder")
     base, clf, data = BaseRecipe(), ClassifierRecipe(), DataRecipe()
     start = time.perf_counter()
 

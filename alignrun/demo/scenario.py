@@ -316,10 +316,11 @@ def base_pairs(n: int, seed: int = 0, rude_share: float = 0.35) -> list[Pair]:
 
 def _unique_prompts(rng: random.Random, n: int, heldout: bool) -> list[str]:
     seen: dict[str, None] = {}
-    for _ in range(n * 50):
-        if len(seen) == n:
-            break
-        seen.setdefault(_prompt(rng, heldout)[1])
+    misses = 0
+    while len(seen) < n and misses < 1000:  # 1000 repeats in a row: the templates are exhausted
+        prompt = _prompt(rng, heldout)[1]
+        misses = misses + 1 if prompt in seen else 0
+        seen.setdefault(prompt)
     if len(seen) < n:
         raise ValueError(f"the scenario cannot make {n} distinct {'held-out' if heldout else 'training'} prompts")
     return list(seen)
