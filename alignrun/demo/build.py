@@ -142,9 +142,10 @@ def _generation_config(decoder_start: int, sample: bool, max_new_tokens: int) ->
                             max_new_tokens=max_new_tokens, **extra)
 
 
-def _t5_config(vocab: int, **sizes: int) -> T5Config:
+def _t5_config(vocab: int, d_model: int, d_kv: int, heads: int, d_ff: int, layers: int) -> T5Config:
     """A T5 config without dropout, as many decoder as encoder layers, and this module's special token ids."""
-    config = T5Config(vocab_size=vocab, dropout_rate=0.0, pad_token_id=PAD_ID, eos_token_id=EOS_ID, **sizes)
+    config = T5Config(vocab_size=vocab, d_model=d_model, d_kv=d_kv, num_heads=heads, d_ff=d_ff, num_layers=layers,
+                      dropout_rate=0.0, pad_token_id=PAD_ID, eos_token_id=EOS_ID)
     config.decoder_start_token_id = PAD_ID  # T5 starts decoding from the pad token (Raffel et al. 2020; from memory)
     return config
 
@@ -154,7 +155,7 @@ def build_tiny_seq2seq(out: Path, arch: str, tokenizer_dir: Path, seed: int = 0)
     tokenizer = AutoTokenizer.from_pretrained(tokenizer_dir)
     vocab = len(tokenizer)
     if arch == "t5":
-        config: T5Config | BartConfig = _t5_config(vocab, d_model=64, d_kv=16, num_heads=4, d_ff=128, num_layers=2)
+        config: T5Config | BartConfig = _t5_config(vocab, d_model=64, d_kv=16, heads=4, d_ff=128, layers=2)
         model_cls: type = T5ForConditionalGeneration
         start = PAD_ID
     elif arch == "bart":
@@ -203,8 +204,7 @@ def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int) ->
     labels = tokenizer([p.reply for p in pairs], padding=True, return_tensors="pt").input_ids
     labels[labels == PAD_ID] = -100  # no loss on padding
     reply_tokens = (labels != -100).sum(1)
-    config = _t5_config(len(tokenizer), d_model=recipe.d_model, d_kv=recipe.d_kv, num_heads=recipe.heads,
-                        d_ff=recipe.d_ff, num_layers=recipe.layers)
+    config = _t5_config(len(tokenizer), recipe.d_model, recipe.d_kv, recipe.heads, recipe.d_ff, recipe.layers)
     torch.manual_seed(seed)
     model = T5ForConditionalGeneration(config)
     optimizer = torch.optim.AdamW(model.parameters(), lr=recipe.learning_rate, weight_decay=0.01)
