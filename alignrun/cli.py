@@ -55,7 +55,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_config(p)
     p.add_argument("--out", help="sweep folder (default: sweep.out, else sweeps/<run.name>)")
     p.add_argument("--backend", choices=["local", "ray"], default="local", help="where trials run")
-    p.add_argument("--workers", type=int, default=1, help="local: trials at once (cores are divided)")
+    p.add_argument("--workers", type=int, default=1, help="trials at once (the cores are divided among them)")
     p.add_argument("--address", help="ray: address of an existing cluster (default: start a local one)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
 
@@ -131,6 +131,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("alignrun: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into `head` and the like
+        sys.stderr.close()
+        return 0
     except Exception as exc:
         if args.debug:
             raise

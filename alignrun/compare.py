@@ -349,6 +349,7 @@ def _plot_pareto(rows: list[dict[str, Any]], path: Path) -> Path:
     for r in rows:
         ax.annotate(r["run"], (r["kl"], r["harm_reduction"]), fontsize=7, xytext=(3, 3), textcoords="offset points")
     ax.axhline(0, color="black", linewidth=0.5)
+    ax.margins(x=0.2, y=0.1)  # room for the run labels
     ax.set_xlabel("KL to reference after training (lower is better)")
     ax.set_ylabel("harm reduction: mean before - after (higher is better)")
     ax.set_title("Harm reduction versus drift")

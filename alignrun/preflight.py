@@ -24,6 +24,7 @@ from scipy.stats import rankdata
 from alignrun.config import RewardSection, load_config
 from alignrun.errors import UserError
 from alignrun.report import write_json_atomic
+from alignrun.resources import describe, describe_fast_settings, estimate, fast_settings
 from alignrun.reward import Scorer, describe_transform, load_scorer, reward_from_scores
 
 PROBE_ROW = '{"text": "...", "harmful": true} or {"text": "...", "harmful": false}'
@@ -238,7 +239,12 @@ def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path
           f"reward gap {report.reward_gap:+.3f}")
     print(f"verdict: {report.verdict}")
     print(report.message)
-    # RESOURCE ESTIMATE: the lead adds the memory / step-time estimate here.
+    try:
+        lines = describe(estimate(cfg))
+    except UserError as exc:  # e.g. a base model not available here: the polarity verdict still stands
+        lines = [f"resources: not estimated: {exc}"]
+    lines.append(describe_fast_settings(fast_settings(), cfg.base.precision))
+    print("\n".join(lines))
     if out is not None:
         print(f"wrote {write_preflight(report, out)}")
     return 0 if report.verdict == "ok" else EXIT_POLARITY

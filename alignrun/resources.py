@@ -6,8 +6,10 @@ byte counts per parameter; time divides a FLOP count by matmul throughput measur
 
 from __future__ import annotations
 
+import statistics
 import time
 import warnings
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -26,6 +28,10 @@ GRAD_BYTES = 4  # one fp32 gradient per trainable parameter (common practice)
 # model, beyond its weights: calibrated as measured peak RSS minus the rest of this estimate for the tiny
 # (2M-parameter) shape of scripts/bench on the development machine (2 cores, torch 2.13, Linux).
 PROCESS_OVERHEAD_MB = 600.0
+# Fixed cost of one forward pass through one layer (module calls, small ops, autograd bookkeeping), which
+# no FLOP count sees: fitted as (measured - FLOP-predicted seconds) / layer passes on the tiny (2M) shape
+# of scripts/bench on the development machine, where it dominates; small and base shapes check it.
+LAYER_PASS_SECONDS = 0.005
 LOGITS_COPIES_UPDATE = 4  # [mb, T, V] fp32 tensors alive in one update minibatch: logits, log-softmax, 2 grads
 LOGITS_COPIES_ROLLOUT = 2  # [B, T, V] fp32: the per-step logits from generation and their stacked copy
 
@@ -108,8 +114,8 @@ class Dims:
     enc_layers: int
     dec_layers: int
     vocab: int
-    enc_params: int  # encoder matmul parameters (embeddings excluded): FLOPs per encoder token / 2
-    dec_params: int  # decoder matmul parameters plus the output projection: FLOPs per decoder token / 2
+    enc_params: int  # encoder non-embedding parameters: forward FLOPs per encoder token / 2
+    dec_params: int  # decoder non-embedding parameters plus the output projection: FLOPs per decoder token / 2
     dtype: str
 
 
@@ -127,30 +133,54 @@ def model_dims(model: nn.Module) -> Dims:
     )
 
 
-def matmul_gflops(m: int, k: int, n: int, seconds: float = 0.3) -> float:
-    """Best observed fp32 matmul throughput for [m, k] @ [k, n] over about `seconds` of repeats."""
-    a, b = torch.randn(m, k), torch.randn(k, n)
-    a @ b
-    best, end = float("inf"), time.perf_counter() + seconds
-    while time.perf_counter() < end:
+def _median_seconds(run: Callable[[], object], seconds: float) -> float:
+    run()
+    times: list[float] = []
+    end = time.perf_counter() + seconds
+    while time.perf_counter() < end or len(times) < 3:
         start = time.perf_counter()
-        a @ b
-        best = min(best, time.perf_counter() - start)
-    return 2 * m * k * n / best / 1e9  # a matmul is 2 m k n FLOPs
+        run()
+        times.append(time.perf_counter() - start)
+    return statistics.median(times)  # the median, so a machine busy with other work is seen as it is
 
 
-def step_flops(d: Dims, cfg: Experiment, trainable: int) -> tuple[float, float]:
-    """(batched FLOPs, decoding FLOPs) of one step; attention score FLOPs are left out (short sequences).
+def matmul_gflops(m: int, k: int, n: int, precision: str = "fp32", seconds: float = 0.25) -> float:
+    """Measured throughput of [m, k] @ [k, n] with fp32 inputs, under bf16 autocast when asked for."""
+    from alignrun.models import autocast
 
-    Forward: 2 x matmul parameters x tokens (Kaplan et al. 2020). Backward through frozen weights needs
-    only input gradients (another 2 x) plus weight gradients of the trainable ones (2 x trainable x tokens).
+    a, b = torch.randn(m, k), torch.randn(k, n)
+
+    def run() -> None:
+        with torch.no_grad(), autocast(precision, torch.device("cpu")):
+            a @ b
+
+    return 2 * m * k * n / _median_seconds(run, seconds) / 1e9  # a matmul is 2 m k n FLOPs
+
+
+@dataclass
+class Work:
+    batched_flops: float  # whole-batch matmuls: prompt encoding, reference forward, updates
+    decode_flops: float  # one token per row per call: the decoder while sampling
+    layer_passes: int  # forward passes through one layer (a backward counts as two)
+
+
+def step_work(d: Dims, cfg: Experiment, trainable: int) -> Work:
+    """The work of one step; attention score FLOPs are left out (short sequences).
+
+    Forward: 2 x non-embedding parameters x tokens (Kaplan et al. 2020). Backward through frozen weights
+    needs only input gradients (another 2 x) plus weight gradients of the trainable ones (2 x trainable x
+    tokens); with every weight trainable this gives the usual 3 x forward.
     """
-    b, p, t, e = cfg.ppo.prompts_per_step, cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens, cfg.ppo.epochs
+    b, p, t = cfg.ppo.prompts_per_step, cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens
+    epochs, minibatches = cfg.ppo.epochs, cfg.ppo.prompts_per_step // cfg.ppo.minibatch
     forward = 2 * (d.enc_params * b * p + d.dec_params * b * t)
     backward = forward + 2 * trainable * b * (p + t)
-    encode = 2 * d.enc_params * b * p  # generation encodes the prompts once, batched
-    decode = 2 * d.dec_params * b * t  # then runs the decoder one token per row at a time
-    return encode + forward + e * (forward + backward), decode  # + reference forward + epochs of updates
+    encode = 2 * d.enc_params * b * p  # sampling encodes the prompts once
+    decode = 2 * d.dec_params * b * t  # then runs the decoder and output projection once per new token
+    layers = d.enc_layers + d.dec_layers + 1  # + the output projection and loss
+    passes = (d.enc_layers + t * (d.dec_layers + 1)) + layers + epochs * minibatches * 3 * layers
+    return Work(batched_flops=encode + forward + epochs * (forward + backward), decode_flops=decode,
+                layer_passes=passes)
 
 
 def activation_bytes(d: Dims, cfg: Experiment) -> int:
@@ -183,10 +213,15 @@ def estimate(cfg: Experiment) -> Estimate:
     optimizer = optimizer_bytes(trainable)
     activations = activation_bytes(d, cfg)
     peak_mb = (weights + optimizer + activations) / MB + PROCESS_OVERHEAD_MB
-    batched, decode = step_flops(d, cfg, trainable)
+    work = step_work(d, cfg, trainable)
     b, mb, p = cfg.ppo.prompts_per_step, cfg.ppo.minibatch, cfg.generation.max_prompt_tokens
-    throughput = {"batched": matmul_gflops(mb * p, d.d_model, d.d_ff), "decode": matmul_gflops(b, d.d_model, d.d_ff)}
-    seconds = batched / (throughput["batched"] * 1e9) + decode / (throughput["decode"] * 1e9)
+    precision = cfg.base.precision
+    # calibration (< 1 s): an encoder feed-forward matmul at update batch size, and the output projection at
+    # one token per row, memory-bound like every matmul while decoding
+    throughput = {"batched": matmul_gflops(mb * p, d.d_model, d.d_ff, precision),
+                  "decode": matmul_gflops(b, d.d_model, d.vocab, precision)}
+    seconds = (work.batched_flops / (throughput["batched"] * 1e9) + work.decode_flops / (throughput["decode"] * 1e9)
+               + work.layer_passes * LAYER_PASS_SECONDS)
     available = psutil.virtual_memory().available / MB
     warning = None
     if peak_mb > available:
@@ -196,7 +231,7 @@ def estimate(cfg: Experiment) -> Estimate:
     return Estimate(base_params=base, lora_params=lora, value_head_params=head, total_params=base + lora,
                     trainable_params=trainable, weights_mb=weights / MB, optimizer_mb=optimizer / MB,
                     activations_mb=activations / MB, overhead_mb=PROCESS_OVERHEAD_MB, peak_mb=peak_mb,
-                    available_mb=available, flops_per_step=batched + decode, seconds_per_step=seconds,
+                    available_mb=available, flops_per_step=work.batched_flops + work.decode_flops, seconds_per_step=seconds,
                     throughput_gflops=throughput, warning=warning)
 
 
@@ -237,22 +272,28 @@ def fast_settings() -> dict[str, bool | str]:
             "int8_dynamic": _int8_dynamic_works(), "recommended_precision": "bf16" if bf16 else "fp32"}
 
 
-def describe(est: Estimate, settings: dict[str, bool | str], precision: str) -> list[str]:
-    """Lines for `alignrun check`."""
+def describe(est: Estimate) -> list[str]:
+    """The estimate as lines for `alignrun check`."""
     lines = [
         f"parameters: {est.total_params:,} total, {est.trainable_params:,} trainable "
         f"(LoRA {est.lora_params:,} + value head {est.value_head_params:,})",
         f"memory: predicted peak {est.peak_mb:,.0f} MB (weights {est.weights_mb:,.0f}, AdamW + gradients "
         f"{est.optimizer_mb:,.1f}, activations {est.activations_mb:,.0f}, process {est.overhead_mb:,.0f}); "
         f"available {est.available_mb:,.0f} MB",
-        f"time: about {est.seconds_per_step:,.1f} s per step in fp32 ({est.flops_per_step / 1e9:,.0f} GFLOP; "
-        f"measured matmul {est.throughput_gflops['batched']:.1f} GFLOP/s batched, "
-        f"{est.throughput_gflops['decode']:.1f} decoding)",
-        f"fast settings: bf16 {'yes' if settings['bf16'] else 'no'} (cpu {settings['cpu_capability']}), "
-        f"int8 dynamic quantisation {'yes' if settings['int8_dynamic'] else 'no'}; base.precision = "
-        f"{precision!r}" + (f" (try base.precision = \"{settings['recommended_precision']}\")"
-                            if settings["recommended_precision"] != precision else ""),
+        f"time: about {est.seconds_per_step:,.1f} s per step ({est.flops_per_step / 1e9:,.0f} GFLOP; matmuls "
+        f"measured here at {est.throughput_gflops['batched']:.1f} GFLOP/s batched, "
+        f"{est.throughput_gflops['decode']:.1f} while decoding)",
     ]
     if est.warning:
         lines.append(f"!! {est.warning}")
     return lines
+
+
+def describe_fast_settings(settings: dict[str, bool | str], precision: str) -> str:
+    """One line for `alignrun check`: what the CPU supports and whether the config uses it."""
+    hint = ""
+    if settings["recommended_precision"] != precision:
+        hint = f"; try base.precision = \"{settings['recommended_precision']}\""
+    return (f"fast settings: bf16 {'yes' if settings['bf16'] else 'no'} (cpu {settings['cpu_capability']}"
+            f"{', amx' if settings['amx'] else ''}), int8 dynamic quantisation "
+            f"{'yes' if settings['int8_dynamic'] else 'no'}; base.precision = \"{precision}\"{hint}")

@@ -1,27 +1,30 @@
 """Benchmark one alignrun step against a bare floor and a naive loop on three random T5-shaped models.
 
-    scripts/bench [--shapes tiny,small,base] [--out bench-results/bench.json] [--no-memory]
+    scripts/bench [--shapes tiny,small,base] [--out bench-results/bench.json] [--no-memory] [--threads N]
 
 For each shape a random model is saved as a Hugging Face folder (WordLevel tokenizer over invented words)
-and loaded by the real `build_policy`. In one process, after one warm-up step per variant, it times:
+and loaded by the real `build_policy`. In one process, after a one-epoch warm-up step of every variant,
+it times one step of each:
 
-    ours       alignrun.trainer.train_step (fp32): generation with old log-probs and values taken from the
-               generation pass, reference with adapters disabled, reward, PPO update
-    ours-bf16  the same with base.precision = "bf16" (autocast)
-    floor      bare compute: the same generate, one reference forward, the same epochs x minibatches of
-               forward/backward/optimizer step, nothing else (no value head, no bookkeeping)
-    naive      a deep-copied frozen reference model plus an extra policy forward for old log-probs and
-               values, then the same reward and PPO update
+    ours        alignrun.trainer.train_step in fp32: old log-probs and values from the generation pass,
+                reference = the same weights with adapters disabled, reward, PPO update
+    floor       bare compute: the same generate, one reference forward, the same epochs x minibatches of
+                forward/backward/optimizer step, nothing else (no value head, no bookkeeping)
+    naive       a deep-copied frozen reference model plus an extra policy forward for old log-probs and
+                values, then the same reward, advantages and PPO update as ours
+    ours-bf16   ours with base.precision = "bf16" (autocast over fp32 weights), the fastest setting today
+    ours-bf16w  PROPOSED, not in alignrun yet: ours-bf16 with the frozen linear weights stored in bf16
+                (the same numbers as ours-bf16; adapters, embeddings, norms and value head stay fp32)
 
-Peak RSS is per process, so each variant's memory is measured in its own subprocess
-(`bench.py --variant X --model DIR`, one step, ru_maxrss). All variants generate exactly 32 tokens: the
-saved generation config sets min_new_tokens = max_new_tokens, and every variant calls the same generate.
+Wall time and process CPU time are both recorded: CPU time is less disturbed by other work on the machine.
+Peak RSS is per process, so each variant's memory is measured in its own subprocess (one step, VmHWM).
+All variants generate exactly 32 tokens: the saved generation config sets min_new_tokens, and every
+variant calls the same generate.
 """
 
 from __future__ import annotations
 
 import argparse
-import copy
 import gc
 import itertools
 import json
@@ -43,8 +46,8 @@ from typing import Any
 os.environ.setdefault("HF_HUB_OFFLINE", "1")
 os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
 os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
+sys.path.insert(1, str(Path(__file__).resolve().parent.parent))  # alignrun, when it is not installed
 
-import numpy as np  # noqa: E402
 import torch  # noqa: E402
 from accelerate import Accelerator  # noqa: E402
 from tokenizers import Tokenizer, models, pre_tokenizers, processors  # noqa: E402
@@ -58,8 +61,9 @@ from alignrun.reward import load_scorer, reward_from_scores  # noqa: E402
 
 PAD_ID, EOS_ID, UNK_ID = 0, 1, 2
 PROMPTS, PROMPT_TOKENS, NEW_TOKENS, MINIBATCH, EPOCHS, RANK = 16, 64, 32, 8, 4, 8
-VARIANTS = ("ours", "ours-bf16", "floor", "naive")
+VARIANTS = ("ours", "floor", "naive", "ours-bf16", "ours-bf16w")
 PARTS = ("generate", "old_logp", "reference", "reward", "update", "other")
+CPU = torch.device("cpu")
 
 
 @dataclass(frozen=True)
@@ -73,14 +77,14 @@ class Shape:
 
 
 SHAPES = {
-    "tiny": Shape(d_model=128, heads=4, d_kv=32, d_ff=512, layers=2, vocab=8000),  # ~2.1M parameters
+    "tiny": Shape(d_model=128, heads=4, d_kv=32, d_ff=512, layers=2, vocab=8000),  # 2.0M parameters
     "small": Shape(d_model=512, heads=8, d_kv=64, d_ff=2048, layers=6, vocab=32128),  # T5-small-shaped, 60.5M
     "base": Shape(d_model=768, heads=12, d_kv=64, d_ff=3072, layers=12, vocab=32128),  # T5-base-shaped, 223M
 }
 
 
 def length_harm(texts: list[str]) -> list[float]:
-    """The bench's reward backend: constant time per text, deterministic, in [0, 1]."""
+    """The bench's reward backend (reward.source = "bench:length_harm"): constant time per text, in [0, 1]."""
     return [(len(t) % 10) / 10 for t in texts]
 
 
@@ -118,6 +122,10 @@ def build_model(shape: Shape, out: Path) -> Path:
     return out
 
 
+def model_vocab(model: Path) -> int:
+    return int(json.loads((model / "config.json").read_text())["vocab_size"])
+
+
 def bench_prompts(vocab: int, seed: int = 1) -> list[str]:
     """PROMPTS prompts of PROMPT_TOKENS tokens each (PROMPT_TOKENS - 1 words plus </s>)."""
     words = invented_words(vocab - 3)
@@ -125,18 +133,41 @@ def bench_prompts(vocab: int, seed: int = 1) -> list[str]:
     return [" ".join(rng.choices(words, k=PROMPT_TOKENS - 1)) for _ in range(PROMPTS)]
 
 
-def experiment(model: Path, precision: str = "fp32", reference: str = "adapters-off",
-               epochs: int = EPOCHS) -> Experiment:
+def variant_cfg(model: Path, variant: str, epochs: int = EPOCHS) -> Experiment:
     return Experiment.model_validate({
-        "base": {"model": str(model), "device": "cpu", "precision": precision},
+        "base": {"model": str(model), "device": "cpu", "precision": "bf16" if "bf16" in variant else "fp32"},
         "lora": {"rank": RANK},
-        "reference": {"mode": reference},
+        "reference": {"mode": "copy" if variant == "naive" else "adapters-off"},
         "reward": {"backend": "callable", "source": "bench:length_harm"},
         "ppo": {"prompts_per_step": PROMPTS, "minibatch": MINIBATCH, "epochs": epochs},
         "generation": {"max_new_tokens": NEW_TOKENS, "max_prompt_tokens": PROMPT_TOKENS},
         "data": {"prompts": "unused-by-the-bench"},
         "evaluation": {"judge": None},
     })
+
+
+def linear_weights_to_bf16(model: torch.nn.Module) -> None:
+    """PROPOSED for models.build_policy when base.precision = "bf16", emulated here on the loaded policy.
+
+    Under bf16 autocast every frozen linear weight is rounded to bf16 at each matmul anyway, so storing those
+    weights in bf16 once gives the same numbers with half their memory and no cast per call. The adapters
+    (trainable), the embeddings (and an output projection tied to them), the layer norms and the value head
+    stay fp32.
+    """
+    tied = model.get_input_embeddings().weight
+    for module in model.modules():
+        if isinstance(module, torch.nn.Linear) and not module.weight.requires_grad and module.weight is not tied:
+            module.weight = torch.nn.Parameter(module.weight.detach().to(torch.bfloat16), requires_grad=False)
+    for param in model.parameters():  # copy the rest out of the memory-mapped file so its pages are released
+        if not param.requires_grad and param.dtype == torch.float32:
+            param.data = param.data.clone()
+
+
+def load_policy(cfg: Experiment, variant: str) -> Policy:
+    policy = build_policy(cfg.base, cfg.lora, cfg.reference, CPU)
+    if variant == "ours-bf16w":
+        linear_weights_to_bf16(policy.lm)
+    return policy
 
 
 # ---------------------------------------------------------------------------------------- the variants
@@ -171,6 +202,14 @@ class Clock:
 
 
 CLOCK = Clock()
+PPO_UPDATE = trainer.ppo_update  # the naive loop calls it directly, timed by its own block
+
+
+def instrument() -> None:
+    """Time the real rollout and update functions from inside train_step (the bench process only)."""
+    CLOCK.wrap(rollout, "sample", "generate")
+    CLOCK.wrap(rollout, "reference_logprobs", "reference")
+    CLOCK.wrap(trainer, "ppo_update", "update")
 
 
 def plain_generate(policy: Policy, ids: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
@@ -182,6 +221,7 @@ def plain_generate(policy: Policy, ids: torch.Tensor, mask: torch.Tensor) -> tor
 
 @dataclass
 class Setup:
+    variant: str
     cfg: Experiment
     policy: Policy
     net: torch.nn.Module
@@ -191,30 +231,33 @@ class Setup:
     controller: ppo.KLController
     prompts: list[str]
 
+    def with_epochs(self, epochs: int) -> Setup:
+        cfg = self.cfg.model_copy(update={"ppo": self.cfg.ppo.model_copy(update={"epochs": epochs})})
+        return Setup(**{**self.__dict__, "cfg": cfg})
 
-def make_setup(cfg: Experiment, prompts: list[str], accelerator: Accelerator, policy: Policy | None = None,
-               floor: bool = False) -> Setup:
-    """A policy (built by the real build_policy unless given), its optimizer, scorer and KL controller."""
-    device = torch.device("cpu")
-    policy = policy or build_policy(cfg.base, cfg.lora, cfg.reference, device)
-    module = policy.lm if floor else policy.net
-    optimizer = torch.optim.AdamW([p for p in module.parameters() if p.requires_grad], lr=cfg.ppo.learning_rate)
+
+def make_setup(variant: str, model: Path, accelerator: Accelerator, policy: Policy | None = None,
+               epochs: int = EPOCHS) -> Setup:
+    """A variant's policy (built by the real build_policy unless shared), optimizer, scorer and KL controller."""
+    cfg = variant_cfg(model, variant, epochs)
+    policy = policy or load_policy(cfg, variant)
+    trained = policy.lm if variant == "floor" else policy.net
+    optimizer = torch.optim.AdamW([p for p in trained.parameters() if p.requires_grad], lr=cfg.ppo.learning_rate)
     net, optimizer = accelerator.prepare(policy.net, optimizer)
-    return Setup(cfg, policy, net, optimizer, accelerator, load_scorer(cfg.reward, "reward"),
-                 ppo.KLController(beta=cfg.kl.coef), prompts)
+    return Setup(variant, cfg, policy, net, optimizer, accelerator, load_scorer(cfg.reward, "reward"),
+                 ppo.KLController(beta=cfg.kl.coef), bench_prompts(model_vocab(model)))
 
 
 def ours_step(s: Setup, step: int) -> dict[str, float]:
     row = trainer.train_step(s.policy, s.net, s.optimizer, s.accelerator, s.scorer, s.controller, s.prompts, s.cfg,
-                             step, torch.device("cpu"))
-    parts = CLOCK.take()
-    return {**parts, "reward": row["reward_s"], "step": row["step_s"]}
+                             step, CPU)
+    return {**CLOCK.take(), "reward": row["reward_s"], "step": row["step_s"]}
 
 
 def floor_step(s: Setup, step: int) -> dict[str, float]:
     """Bare compute: generate, one reference forward, epochs x minibatches of forward/backward/step."""
     lm, p = s.policy.lm, s.cfg.ppo
-    ids, mask = rollout.encode_prompts(s.policy.tokenizer, s.prompts, PROMPT_TOKENS, torch.device("cpu"))
+    ids, mask = rollout.encode_prompts(s.policy.tokenizer, s.prompts, PROMPT_TOKENS, CPU)
     start = time.perf_counter()
     with CLOCK.part("generate"), torch.no_grad():
         seq = plain_generate(s.policy, ids, mask)
@@ -222,10 +265,10 @@ def floor_step(s: Setup, step: int) -> dict[str, float]:
     with CLOCK.part("reference"), torch.no_grad(), lm.disable_adapter():
         selective_log_softmax(lm(input_ids=ids, attention_mask=mask, decoder_input_ids=decoder_input,
                                  use_cache=False).logits, response)
-    gen = torch.Generator().manual_seed(step)
+    order = torch.Generator().manual_seed(step)
     with CLOCK.part("update"):
         for _ in range(p.epochs):
-            for idx in torch.randperm(len(s.prompts), generator=gen).split(p.minibatch):
+            for idx in torch.randperm(len(s.prompts), generator=order).split(p.minibatch):
                 logits = lm(input_ids=ids[idx], attention_mask=mask[idx], decoder_input_ids=decoder_input[idx],
                             use_cache=False).logits
                 loss = -selective_log_softmax(logits, response[idx]).mean()
@@ -238,11 +281,11 @@ def floor_step(s: Setup, step: int) -> dict[str, float]:
 def naive_step(s: Setup, step: int) -> dict[str, float]:
     """A straightforward loop: plain generate, a policy forward for old log-probs and values, a reference
     forward through a separate deep-copied model, then the same reward, advantages and PPO update as ours."""
-    policy, cfg, device = s.policy, s.cfg, torch.device("cpu")
+    policy, cfg = s.policy, s.cfg
     assert policy.reference_copy is not None
     tok = policy.tokenizer
     start = time.perf_counter()
-    ids, mask = rollout.encode_prompts(tok, s.prompts, PROMPT_TOKENS, device)
+    ids, mask = rollout.encode_prompts(tok, s.prompts, PROMPT_TOKENS, CPU)
     with CLOCK.part("generate"), torch.no_grad():
         seq = plain_generate(policy, ids, mask)
     decoder_input = seq[:, :-1]
@@ -261,82 +304,61 @@ def naive_step(s: Setup, step: int) -> dict[str, float]:
     advantages, returns = ppo.gae(rewards, ro.values, response_mask, cfg.ppo.gamma, cfg.ppo.gae_lambda)
     advantages = ppo.whiten(advantages, response_mask)
     with CLOCK.part("update"):
-        UNTIMED_PPO_UPDATE(s.net, s.optimizer, s.accelerator, ro, advantages, returns, cfg, step, device)
+        PPO_UPDATE(s.net, s.optimizer, s.accelerator, ro, advantages, returns, cfg, step, CPU)
     s.controller.update(float(kl.sum(dim=1).mean()))
     return {**CLOCK.take(), "step": time.perf_counter() - start}
 
 
-UNTIMED_PPO_UPDATE = trainer.ppo_update
 STEPS: dict[str, Callable[[Setup, int], dict[str, float]]] = {
-    "ours": ours_step, "ours-bf16": ours_step, "floor": floor_step, "naive": naive_step,
+    "ours": ours_step, "floor": floor_step, "naive": naive_step, "ours-bf16": ours_step, "ours-bf16w": ours_step,
 }
 
 
-def instrument() -> None:
-    """Time the real rollout and update functions from inside train_step (the bench process only)."""
-    CLOCK.wrap(rollout, "sample", "generate")
-    CLOCK.wrap(rollout, "reference_logprobs", "reference")
-    CLOCK.wrap(trainer, "ppo_update", "update")
+def cpu_seconds() -> float:
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    return usage.ru_utime + usage.ru_stime
 
 
-def breakdown(raw: dict[str, float]) -> dict[str, float]:
-    """generate / old_logp / reference / reward / update / other (= step minus the named parts) / step."""
+def run_step(s: Setup, step: int) -> dict[str, float]:
+    """One step: generate / old_logp / reference / reward / update / other (= step minus the rest) / step / cpu."""
+    cpu = cpu_seconds()
+    raw = STEPS[s.variant](s, step)
     out = {part: raw.get(part, 0.0) for part in PARTS if part != "other"}
     out["other"] = max(0.0, raw["step"] - sum(out.values()))
-    out["step"] = raw["step"]
-    return out
-
-
-def variant_cfg(model: Path, variant: str, epochs: int = EPOCHS) -> Experiment:
-    return experiment(model, precision="bf16" if variant == "ours-bf16" else "fp32",
-                      reference="copy" if variant == "naive" else "adapters-off", epochs=epochs)
+    return {**out, "step": raw["step"], "cpu": cpu_seconds() - cpu}
 
 
 # ---------------------------------------------------------------------------------------- measurements
 
 
-def time_shape(model: Path, vocab: int) -> dict[str, dict[str, float]]:
-    """One process: build ours (shared by ours-bf16 and floor) and naive, warm each up, then time one step each."""
+def time_shape(model: Path) -> dict[str, dict[str, float]]:
+    """One process: ours, floor and ours-bf16 share one policy; naive and ours-bf16w load their own.
+    Every variant gets a one-epoch warm-up step, then one full step each is timed."""
     accelerator = Accelerator(cpu=True)
-    prompts = bench_prompts(vocab)
-    ours = make_setup(variant_cfg(model, "ours"), prompts, accelerator)
-    setups = {
-        "ours": ours,
-        "ours-bf16": make_setup(variant_cfg(model, "ours-bf16"), prompts, accelerator, policy=ours.policy),
-        "floor": make_setup(variant_cfg(model, "floor"), prompts, accelerator, policy=ours.policy, floor=True),
-        "naive": make_setup(variant_cfg(model, "naive"), prompts, accelerator),
-    }
-    for name, setup in setups.items():  # warm-up: one step of one epoch per variant (same kernels and shapes)
-        STEPS[name](with_epochs(setup, 1), 0)
+    ours = make_setup("ours", model, accelerator)
+    setups = {"ours": ours, "floor": make_setup("floor", model, accelerator, policy=ours.policy),
+              "naive": make_setup("naive", model, accelerator),
+              "ours-bf16": make_setup("ours-bf16", model, accelerator, policy=ours.policy),
+              "ours-bf16w": make_setup("ours-bf16w", model, accelerator)}
+    for setup in setups.values():
+        run_step(setup.with_epochs(1), 0)
     torch.manual_seed(0)
-    return {name: breakdown(STEPS[name](setup, 1)) for name, setup in setups.items()}
-
-
-def with_epochs(setup: Setup, epochs: int) -> Setup:
-    cfg = setup.cfg.model_copy(update={"ppo": setup.cfg.ppo.model_copy(update={"epochs": epochs})})
-    return Setup(**{**setup.__dict__, "cfg": cfg})
+    return {name: run_step(setup, 1) for name, setup in setups.items()}
 
 
 def memory_child(model: Path, variant: str, epochs: int) -> dict[str, float]:
-    """Run in a fresh process: build the variant, run one step, report peak RSS and the step time."""
-    accelerator = Accelerator(cpu=True)
-    cfg = variant_cfg(model, variant, epochs)
-    prompts = bench_prompts(cfg_vocab(model))
-    setup = make_setup(cfg, prompts, accelerator, floor=variant == "floor")
-    row = breakdown(STEPS[variant](setup, 0))
+    """In a fresh process: build the variant, run one step, report this process's peak RSS."""
+    setup = make_setup(variant, model, Accelerator(cpu=True), epochs=epochs)
+    row = run_step(setup, 0)
     return {"peak_rss_mb": own_peak_rss_mb(), "step_s": row["step"]}
 
 
 def own_peak_rss_mb() -> float:
-    """This process's own peak RSS (VmHWM). Not ru_maxrss: Linux carries the parent's RSS at fork over exec."""
+    """This process's own peak RSS (VmHWM). Not ru_maxrss: Linux carries the parent's peak over fork + exec."""
     for line in Path("/proc/self/status").read_text().splitlines():
         if line.startswith("VmHWM:"):
             return int(line.split()[1]) / 1024  # kB
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-
-
-def cfg_vocab(model: Path) -> int:
-    return int(json.loads((model / "config.json").read_text())["vocab_size"])
 
 
 def measure_memory(model: Path, variant: str, epochs: int) -> dict[str, float]:
@@ -348,23 +370,45 @@ def measure_memory(model: Path, variant: str, epochs: int) -> dict[str, float]:
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
-def bf16_logprob_check(model: Path, vocab: int) -> dict[str, float]:
-    """fp32 vs bf16 autocast: teacher-forced log-probs of the same sampled replies, per real token."""
-    cfg = variant_cfg(model, "ours")
-    policy = build_policy(cfg.base, cfg.lora, cfg.reference, torch.device("cpu"))
-    torch.manual_seed(0)
-    ro = rollout.rollout(policy, bench_prompts(vocab), PROMPT_TOKENS, NEW_TOKENS, torch.device("cpu"))
-    out = {}
-    with torch.no_grad():
-        for precision in ("fp32", "bf16"):
-            with autocast(precision, torch.device("cpu")):
-                logits, _ = policy.net(ro.prompt_ids, ro.prompt_mask, ro.decoder_input)
-            out[precision] = selective_log_softmax(logits.float(), ro.response_ids)
-    mask = ro.response_mask.bool()
-    diff = (out["bf16"] - out["fp32"])[mask].abs()
-    return {"tokens": int(mask.sum()), "mean_abs_logp_diff": float(diff.mean()),
-            "max_abs_logp_diff": float(diff.max()), "mean_logp_fp32": float(out["fp32"][mask].mean()),
-            "seq_logp_max_abs_diff": float(((out["bf16"] - out["fp32"]) * ro.response_mask).sum(1).abs().max())}
+# Tolerances fixed before measuring: a per-token log-prob change of 0.05 nats moves the PPO ratio by ~5%, a
+# quarter of the clip range eps = 0.2; a step-0 KL of 0.1 nats per reply costs 0.01 reward at kl.coef = 0.1.
+TOKEN_TOLERANCE, REPLY_KL_TOLERANCE = 0.05, 0.1
+
+
+def precision_check(model: Path) -> dict[str, dict[str, float]]:
+    """bf16 settings vs fp32 on the same model: log-probs of fp32's sampled replies, the PPO ratio at the
+    first minibatch (generation-time vs teacher-forced log-probs), and the KL to the reference at step 0."""
+    out: dict[str, dict[str, float]] = {}
+    fp32: rollout.Rollout | None = None
+    fp32_logp = torch.empty(0)
+    for variant in ("ours", "ours-bf16", "ours-bf16w"):
+        cfg = variant_cfg(model, variant)
+        policy = load_policy(cfg, variant)
+        torch.manual_seed(0)
+        with autocast(cfg.base.precision, CPU):
+            ro = rollout.rollout(policy, bench_prompts(model_vocab(model)), PROMPT_TOKENS, NEW_TOKENS, CPU)
+        if fp32 is None:
+            fp32 = ro
+        with torch.no_grad(), autocast(cfg.base.precision, CPU):
+            own = selective_log_softmax(policy.net(ro.prompt_ids, ro.prompt_mask, ro.decoder_input)[0].float(),
+                                        ro.response_ids)
+            on_fp32 = selective_log_softmax(
+                policy.net(fp32.prompt_ids, fp32.prompt_mask, fp32.decoder_input)[0].float(), fp32.response_ids)
+        fp32_logp = on_fp32 if variant == "ours" else fp32_logp
+        real = fp32.response_mask.bool()
+        vs_fp32 = (on_fp32 - fp32_logp)[real].abs()
+        ratio_shift = (ro.logp - own * ro.response_mask)[ro.response_mask.bool()].abs()
+        out[variant] = {
+            "tokens": int(real.sum()),
+            "logp_vs_fp32_mean": float(vs_fp32.mean()), "logp_vs_fp32_max": float(vs_fp32.max()),
+            "first_ratio_logshift_max": float(ratio_shift.max()),
+            "step0_kl_reply_max": float((ro.logp - ro.ref_logp).sum(dim=1).abs().max()),
+        }
+        out[variant]["within_tolerance"] = bool(
+            out[variant]["logp_vs_fp32_max"] <= TOKEN_TOLERANCE
+            and out[variant]["first_ratio_logshift_max"] <= TOKEN_TOLERANCE
+            and out[variant]["step0_kl_reply_max"] <= REPLY_KL_TOLERANCE)
+    return out
 
 
 # ---------------------------------------------------------------------------------------- report
@@ -374,53 +418,65 @@ def ratio(a: float, b: float) -> float:
     return a / b if b else float("nan")
 
 
-def summarise(results: dict[str, Any]) -> dict[str, dict[str, float]]:
-    out = {}
-    for name, r in results["shapes"].items():
-        t, m = r["time"], r.get("memory", {})
-        row = {"ours/floor": ratio(t["ours"]["step"], t["floor"]["step"]),
-               "ours/naive": ratio(t["ours"]["step"], t["naive"]["step"]),
-               "bf16/fp32-floor": ratio(t["ours-bf16"]["step"], t["floor"]["step"])}
-        if m:
-            row["rss ours/naive"] = ratio(m["ours"]["peak_rss_mb"], m["naive"]["peak_rss_mb"])
-        est = r["estimate"]
-        row["est/meas step"] = ratio(est["seconds_per_step"], t["ours"]["step"])
-        if m:
-            row["est/meas rss"] = ratio(est["peak_mb"], m["ours"]["peak_rss_mb"])
-        out[name] = row
-    return out
+def summarise(entry: dict[str, Any]) -> dict[str, float]:
+    t, m, e = entry["time"], entry.get("memory", {}), entry["estimate"]
+    row: dict[str, float] = {}
+    for clock in ("step", "cpu"):
+        row[f"ours/floor {clock}"] = ratio(t["ours"][clock], t["floor"][clock])
+        row[f"ours/naive {clock}"] = ratio(t["ours"][clock], t["naive"][clock])
+        row[f"bf16/floor {clock}"] = ratio(t["ours-bf16"][clock], t["floor"][clock])
+        row[f"bf16w/floor {clock}"] = ratio(t["ours-bf16w"][clock], t["floor"][clock])
+    row["est/meas step"] = ratio(e["ours"]["seconds_per_step"], t["ours"]["step"])
+    if m:
+        row["rss ours/naive"] = ratio(m["ours"]["peak_rss_mb"], m["naive"]["peak_rss_mb"])
+        row["rss bf16w/naive"] = ratio(m["ours-bf16w"]["peak_rss_mb"], m["naive"]["peak_rss_mb"])
+        row["est/meas rss"] = ratio(e["ours"]["peak_mb"], m["ours"]["peak_rss_mb"])
+        row["est/meas rss naive"] = ratio(e["naive"]["peak_mb"], m["naive"]["peak_rss_mb"])
+    return row
 
 
-TARGETS = {"ours/floor": 1.10, "ours/naive": 0.85, "bf16/fp32-floor": 0.65}
+def _table(title: str, rows: dict[str, dict[str, float]], cols: list[str], fmt: str = ".2f") -> None:
+    print(f"\n{title}")
+    print(f"{'shape':<7}" + "".join(f"{c:>19}" for c in cols))
+    for name, row in rows.items():
+        print(f"{name:<7}" + "".join(f"{row.get(c, float('nan')):>19{fmt}}" for c in cols))
 
 
 def print_tables(results: dict[str, Any]) -> None:
-    summary = results["summary"]
-    print("\nratios (targets: ours/floor <= 1.10, ours/naive <= 0.85, bf16/fp32-floor <= 0.65, "
-          "rss ours/naive <= 0.60 on base; estimate within 0.70-1.30)")
-    cols = ["ours/floor", "ours/naive", "bf16/fp32-floor", "rss ours/naive", "est/meas step", "est/meas rss"]
-    print(f"{'shape':<7}{'params':>9}" + "".join(f"{c:>17}" for c in cols))
-    for name, row in summary.items():
-        params = results["shapes"][name]["estimate"]["total_params"] / 1e6
-        print(f"{name:<7}{params:>8.1f}M" + "".join(f"{row.get(c, float('nan')):>17.2f}" for c in cols))
-    print("\nseconds per step (one step after a one-epoch warm-up; other = step minus the named parts) and peak RSS")
-    print(f"{'shape':<7}{'variant':<10}" + "".join(f"{p:>10}" for p in (*PARTS, "step")) + f"{'peak MB':>10}")
-    for name, r in results["shapes"].items():
+    summary = {name: entry["summary"] for name, entry in results["shapes"].items()}
+    _table("ratios, wall time (targets: ours/floor <= 1.10, ours/naive <= 0.85, fastest/floor <= 0.65)", summary,
+           ["ours/floor step", "ours/naive step", "bf16/floor step", "bf16w/floor step"])
+    _table("ratios, process CPU time (less sensitive to other work on the machine)", summary,
+           ["ours/floor cpu", "ours/naive cpu", "bf16/floor cpu", "bf16w/floor cpu"])
+    _table("peak RSS ratios (target on base: <= 0.60) and estimate / measured (target 0.70-1.30)", summary,
+           ["rss ours/naive", "rss bf16w/naive", "est/meas rss", "est/meas rss naive", "est/meas step"])
+    print("\nseconds per step (one step after a one-epoch warm-up; other = step minus the named parts), "
+          "CPU seconds, peak RSS (MB, own subprocess)")
+    print(f"{'shape':<7}{'variant':<11}" + "".join(f"{p:>10}" for p in (*PARTS, "step", "cpu")) + f"{'peak MB':>9}")
+    for name, entry in results["shapes"].items():
         for variant in VARIANTS:
-            t = r["time"][variant]
-            rss = r.get("memory", {}).get(variant, {}).get("peak_rss_mb", float("nan"))
-            print(f"{name:<7}{variant:<10}" + "".join(f"{t[p]:>10.2f}" for p in (*PARTS, "step")) + f"{rss:>10.0f}")
-    print("\nestimate (alignrun.resources.estimate) vs measured (ours, fp32)")
-    print(f"{'shape':<7}{'total':>12}{'trainable':>11}{'est s':>8}{'meas s':>8}{'est MB':>8}{'meas MB':>9}")
-    for name, r in results["shapes"].items():
-        e = r["estimate"]
-        rss = r.get("memory", {}).get("ours", {}).get("peak_rss_mb", float("nan"))
-        print(f"{name:<7}{e['total_params']:>12,}{e['trainable_params']:>11,}{e['seconds_per_step']:>8.2f}"
-              f"{r['time']['ours']['step']:>8.2f}{e['peak_mb']:>8.0f}{rss:>9.0f}")
-    c = results["bf16_check"]
-    print(f"\nbf16 vs fp32 log-probs on the tiny model's rollout ({c['tokens']} tokens): mean |diff| "
-          f"{c['mean_abs_logp_diff']:.4f}, max {c['max_abs_logp_diff']:.4f} nats (mean log-prob "
-          f"{c['mean_logp_fp32']:.2f}); largest per-reply sum |diff| {c['seq_logp_max_abs_diff']:.3f}")
+            t = entry["time"][variant]
+            rss = entry.get("memory", {}).get(variant, {}).get("peak_rss_mb", float("nan"))
+            print(f"{name:<7}{variant:<11}" + "".join(f"{t[p]:>10.2f}" for p in (*PARTS, "step", "cpu"))
+                  + f"{rss:>9.0f}")
+    print("\nestimate (alignrun.resources.estimate, fp32) vs measured")
+    print(f"{'shape':<7}{'params':>12}{'trainable':>11}{'est s':>8}{'meas s':>8}{'est MB':>8}{'meas MB':>9}"
+          f"{'naive est':>10}{'naive MB':>9}")
+    for name, entry in results["shapes"].items():
+        e, m = entry["estimate"], entry.get("memory", {})
+        print(f"{name:<7}{e['ours']['total_params']:>12,}{e['ours']['trainable_params']:>11,}"
+              f"{e['ours']['seconds_per_step']:>8.2f}{entry['time']['ours']['step']:>8.2f}{e['ours']['peak_mb']:>8.0f}"
+              f"{m.get('ours', {}).get('peak_rss_mb', float('nan')):>9.0f}{e['naive']['peak_mb']:>10.0f}"
+              f"{m.get('naive', {}).get('peak_rss_mb', float('nan')):>9.0f}")
+    check = results.get("precision_check")
+    if check:
+        print(f"\nprecision check on the {results['precision_check_shape']} model (tolerances: per-token "
+              f"{TOKEN_TOLERANCE} nats, step-0 KL per reply {REPLY_KL_TOLERANCE} nats)")
+        for variant, c in check.items():
+            print(f"  {variant:<11} log-probs of fp32's replies vs fp32: mean {c['logp_vs_fp32_mean']:.4f}, max "
+                  f"{c['logp_vs_fp32_max']:.4f}; first PPO ratio log-shift max {c['first_ratio_logshift_max']:.4f}; "
+                  f"step-0 KL per reply max {c['step0_kl_reply_max']:.4f} -> "
+                  f"{'within' if c['within_tolerance'] else 'OUTSIDE'} tolerance")
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -428,9 +484,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--shapes", default="tiny,small,base", help="comma-separated, from: " + ", ".join(SHAPES))
     ap.add_argument("--out", default="bench-results/bench.json", help="where the JSON results go")
     ap.add_argument("--no-memory", action="store_true", help="skip the per-variant peak-RSS subprocesses")
-    ap.add_argument("--threads", type=int, default=0, help="torch threads (0: all cores)")
     ap.add_argument("--memory-epochs", type=int, default=1,
                     help="PPO epochs in the memory runs (activations are freed per minibatch, so 1 shows the peak)")
+    ap.add_argument("--threads", type=int, default=0, help="torch threads (0: all cores)")
     ap.add_argument("--child", choices=VARIANTS, help=argparse.SUPPRESS)
     ap.add_argument("--model", type=Path, help=argparse.SUPPRESS)
     ap.add_argument("--epochs", type=int, default=EPOCHS, help=argparse.SUPPRESS)
@@ -439,48 +495,51 @@ def main(argv: list[str] | None = None) -> int:
     import transformers
 
     transformers.utils.logging.set_verbosity_error()
+    transformers.utils.logging.disable_progress_bar()
+    instrument()
     if args.child:
-        instrument()
         print(json.dumps(memory_child(args.model, args.child, args.epochs)))
         return 0
     shapes = [s.strip() for s in args.shapes.split(",") if s.strip()]
     unknown = [s for s in shapes if s not in SHAPES]
     if unknown:
         ap.error(f"unknown shape(s) {', '.join(unknown)}; choose from {', '.join(SHAPES)}")
-    instrument()
     started = time.perf_counter()
     results: dict[str, Any] = {
         "setup": {"prompts": PROMPTS, "prompt_tokens": PROMPT_TOKENS, "new_tokens": NEW_TOKENS,
                   "minibatch": MINIBATCH, "epochs": EPOCHS, "lora_rank": RANK, "lora_targets": "q,v",
                   "memory_epochs": args.memory_epochs, "threads": torch.get_num_threads(),
-                  "omp_wait_policy": os.environ.get("OMP_WAIT_POLICY", "(unset)"),
-                  "torch": torch.__version__, "platform": platform.platform(),
-                  "load_average_start": os.getloadavg()},
+                  "omp_wait_policy": os.environ.get("OMP_WAIT_POLICY", "(unset)"), "torch": torch.__version__,
+                  "platform": platform.platform(), "load_average_start": os.getloadavg()},
         "fast_settings": resources.fast_settings(), "shapes": {},
     }
+
+    def log(message: str) -> None:
+        print(f"[{time.perf_counter() - started:6.0f}s] {message}", flush=True)
+
     with tempfile.TemporaryDirectory(prefix="alignrun-bench-") as tmp:
         for name in shapes:
-            shape = SHAPES[name]
-            print(f"[{time.perf_counter() - started:6.0f}s] {name}: building the model", flush=True)
-            model = build_model(shape, Path(tmp) / name)
-            entry: dict[str, Any] = {"shape": asdict(shape),
-                                     "estimate": asdict(resources.estimate(variant_cfg(model, "ours")))}
-            print(f"[{time.perf_counter() - started:6.0f}s] {name}: timing ours, ours-bf16, floor, naive", flush=True)
-            entry["time"] = time_shape(model, shape.vocab)
+            log(f"{name}: building the model")
+            model = build_model(SHAPES[name], Path(tmp) / name)
+            entry: dict[str, Any] = {"shape": asdict(SHAPES[name]), "estimate": {
+                v: asdict(resources.estimate(variant_cfg(model, v))) for v in ("ours", "naive")}}
+            if name == shapes[0]:  # the smallest shape asked for: tiny by default
+                log(f"{name}: precision check")
+                results["precision_check"], results["precision_check_shape"] = precision_check(model), name
+            log(f"{name}: timing {', '.join(VARIANTS)}")
+            entry["time"] = time_shape(model)
             gc.collect()
             if not args.no_memory:
-                print(f"[{time.perf_counter() - started:6.0f}s] {name}: peak RSS per variant", flush=True)
+                log(f"{name}: peak RSS, one subprocess per variant")
                 entry["memory"] = {v: measure_memory(model, v, args.memory_epochs) for v in VARIANTS}
+            entry["summary"] = summarise(entry)
             results["shapes"][name] = entry
-            if name == shapes[0]:  # the smallest shape asked for: tiny by default
-                results["bf16_check"] = bf16_logprob_check(model, shape.vocab)
-    results["summary"] = summarise(results)
     results["setup"]["load_average_end"] = os.getloadavg()
     results["setup"]["wall_s"] = time.perf_counter() - started
     print_tables(results)
     out = Path(args.out)
     out.parent.mkdir(parents=True, exist_ok=True)
-    out.write_text(json.dumps(results, indent=2, default=float) + "\n")
+    out.write_text(json.dumps(results, indent=2) + "\n")
     print(f"\nwrote {out} ({results['setup']['wall_s']:.0f} s)")
     return 0
 

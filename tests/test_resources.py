@@ -105,8 +105,9 @@ def test_memory_warning_when_available_memory_is_small(t5_small_config: Path, mo
     est = resources.estimate(_experiment(t5_small_config))
     assert est.available_mb == pytest.approx(100)
     assert est.warning is not None and "exceeds the 100 MB available" in est.warning
-    assert any(line.startswith("!! predicted peak memory") for line in resources.describe(est, {
-        "bf16": False, "cpu_capability": "DEFAULT", "int8_dynamic": False, "recommended_precision": "fp32"}, "fp32"))
+    assert resources.describe(est)[-1].startswith("!! predicted peak memory")
+    monkeypatch.setattr(resources.psutil, "virtual_memory", lambda: SimpleNamespace(available=10**6 * 1024 * 1024))
+    assert resources.estimate(_experiment(t5_small_config)).warning is None
 
 
 def test_fast_settings_are_booleans_and_follow_the_cpu_flags(monkeypatch: pytest.MonkeyPatch, tmp_path: Path):
@@ -122,3 +123,20 @@ def test_fast_settings_are_booleans_and_follow_the_cpu_flags(monkeypatch: pytest
     monkeypatch.setattr(resources, "cpu_flags", lambda: {"avx512f"})
     assert resources.fast_settings()["bf16"] is False
     assert resources.fast_settings()["recommended_precision"] == "fp32"
+
+
+def test_check_prints_the_estimate_and_the_fast_settings(tiny_models: dict[str, Path], tmp_path: Path,
+                                                         capsys: pytest.CaptureFixture[str]):
+    from alignrun.preflight import run_check
+
+    config = tmp_path / "exp.toml"
+    config.write_text(f'[base]\nmodel = "{tiny_models["t5"]}"\n[data]\nprompts = "prompts.jsonl"\n'
+                      '[reward]\nbackend = "callable"\nsource = "tests.tiny_classifiers:class_probabilities"\n'
+                      "harmful_index = 1\n")
+    assert run_check(config, [], None) == 0
+    printed = capsys.readouterr().out
+    est = resources.estimate(_experiment(tiny_models["t5"]))
+    assert f"parameters: {est.total_params:,} total, {est.trainable_params:,} trainable" in printed
+    assert "memory: predicted peak" in printed and "s per step" in printed and "fast settings: bf16" in printed
+    run_check(config, ["base.model=/nonexistent/base"], None)  # the verdict still prints without a base model
+    assert "resources: not estimated: base.model" in capsys.readouterr().out

@@ -68,7 +68,7 @@ class BaseRecipe:
     heads: int = 4
     d_ff: int = 384
     layers: int = 2
-    steps: int = 700
+    steps: int = 1000
     batch_size: int = 32
     learning_rate: float = 1e-2
     warmup_steps: int = 30
@@ -87,7 +87,7 @@ class ClassifierRecipe:
     layers: int = 2
     heads: int = 4
     intermediate: int = 192
-    epochs: int = 3
+    epochs: int = 2
     batch_size: int = 32
     learning_rate: float = 1e-3
 
