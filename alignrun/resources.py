@@ -12,6 +12,7 @@ import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import psutil
 import torch
@@ -22,6 +23,7 @@ from alignrun.errors import UserError
 
 MB = 1024 * 1024
 BYTES_PER_PARAM = {"fp32": 4, "fp16": 2, "bf16": 2, "int8": 1}  # common practice: bytes to hold one weight
+DTYPE_NAMES = {torch.float32: "fp32", torch.float16: "fp16", torch.bfloat16: "bf16", torch.int8: "int8"}
 ADAMW_STATE_BYTES = 8  # two fp32 moments per trainable parameter (Kingma & Ba 2015)
 GRAD_BYTES = 4  # one fp32 gradient per trainable parameter (common practice)
 # Resident memory of a process that has imported torch, transformers, peft, trl and accelerate and loaded a
@@ -32,7 +34,7 @@ PROCESS_OVERHEAD_MB = 600.0
 # no FLOP count sees: fitted as (measured - FLOP-predicted seconds) / layer passes on the tiny (2M) shape
 # of scripts/bench on the development machine, where it dominates; small and base shapes check it.
 LAYER_PASS_SECONDS = 0.005
-LOGITS_COPIES_UPDATE = 4  # [mb, T, V] fp32 tensors alive in one update minibatch: logits, log-softmax, 2 grads
+LOGITS_COPIES_UPDATE = 4  # [mb, T, V] fp32 alive in an update minibatch: logits, log-softmax, 2 gradients
 LOGITS_COPIES_ROLLOUT = 2  # [B, T, V] fp32: the per-step logits from generation and their stacked copy
 
 
@@ -51,7 +53,7 @@ class Estimate:
     available_mb: float
     flops_per_step: float
     seconds_per_step: float
-    throughput_gflops: dict[str, float]  # measured matmul throughput (batched, and one-token-per-row decoding)
+    throughput_gflops: dict[str, float]  # measured matmul GFLOP/s: batched, and one token per row (decoding)
     warning: str | None
 
 
@@ -76,8 +78,9 @@ def meta_model(cfg: Experiment) -> nn.Module:
         config = AutoConfig.from_pretrained(base.model, revision=base.revision,
                                             trust_remote_code=base.trust_remote_code)
     except (OSError, ValueError) as exc:
-        raise UserError(f"base.model: cannot read the model config of {base.model!r} for the resource estimate "
-                        f"({str(exc).splitlines()[0]}); expected a local model folder or a cached hub name") from None
+        raise UserError(f"base.model: cannot read the model config of {base.model!r} for the resource "
+                        f"estimate ({str(exc).splitlines()[0]}); expected a local model folder or a cached "
+                        "hub name") from None
     if not getattr(config, "is_encoder_decoder", False):
         raise UserError(f"base.model: {base.model} is a {config.model_type!r} model, not an encoder-decoder "
                         "(seq2seq) language model")
@@ -85,7 +88,7 @@ def meta_model(cfg: Experiment) -> nn.Module:
         return AutoModelForSeq2SeqLM.from_config(config, trust_remote_code=base.trust_remote_code)
 
 
-def lora_param_count(model: nn.Module, targets: str | list[str], rank: int) -> int:
+def lora_param_count(model: Any, targets: str | list[str], rank: int) -> int:
     """Sum of r * (d_in + d_out) over the adapted linear layers (Hu et al. 2021).
 
     targets: leaf module names, or "all-linear" (every linear layer except the output projection).
@@ -115,19 +118,19 @@ class Dims:
     dec_layers: int
     vocab: int
     enc_params: int  # encoder non-embedding parameters: forward FLOPs per encoder token / 2
-    dec_params: int  # decoder non-embedding parameters plus the output projection: FLOPs per decoder token / 2
-    dtype: str
+    dec_params: int  # decoder non-embedding parameters + output projection: FLOPs per decoder token / 2
+    dtype: str  # of the stored weights
 
 
-def model_dims(model: nn.Module) -> Dims:
+def model_dims(model: Any) -> Dims:  # a transformers seq2seq model (its typing is loose)
     c = model.config
     head = model.get_output_embeddings()
-    dtype = {torch.bfloat16: "bf16", torch.float16: "fp16"}.get(getattr(c, "dtype", None) or torch.float32, "fp32")
+    dtype = DTYPE_NAMES.get(next(model.parameters()).dtype, "fp32")  # the checkpoint's saved dtype, as loaded
     return Dims(
         d_model=c.d_model, d_ff=getattr(c, "d_ff", None) or getattr(c, "encoder_ffn_dim", 4 * c.d_model),
-        heads=getattr(c, "num_heads", None) or getattr(c, "encoder_attention_heads", 1),
-        enc_layers=getattr(c, "num_layers", None) or getattr(c, "encoder_layers", 1),
-        dec_layers=getattr(c, "num_decoder_layers", None) or getattr(c, "decoder_layers", 1),
+        heads=int(getattr(c, "num_heads", None) or getattr(c, "encoder_attention_heads", None) or 1),
+        enc_layers=int(getattr(c, "num_layers", None) or getattr(c, "encoder_layers", None) or 1),
+        dec_layers=int(getattr(c, "num_decoder_layers", None) or getattr(c, "decoder_layers", None) or 1),
         vocab=c.vocab_size, enc_params=_params(model.get_encoder(), skip_embeddings=True),
         dec_params=_params(model.get_decoder(), skip_embeddings=True) + head.weight.numel(), dtype=dtype,
     )
@@ -220,19 +223,19 @@ def estimate(cfg: Experiment) -> Estimate:
     # one token per row, memory-bound like every matmul while decoding
     throughput = {"batched": matmul_gflops(mb * p, d.d_model, d.d_ff, precision),
                   "decode": matmul_gflops(b, d.d_model, d.vocab, precision)}
-    seconds = (work.batched_flops / (throughput["batched"] * 1e9) + work.decode_flops / (throughput["decode"] * 1e9)
-               + work.layer_passes * LAYER_PASS_SECONDS)
+    seconds = (work.batched_flops / (throughput["batched"] * 1e9)
+               + work.decode_flops / (throughput["decode"] * 1e9) + work.layer_passes * LAYER_PASS_SECONDS)
     available = psutil.virtual_memory().available / MB
     warning = None
     if peak_mb > available:
-        warning = (f"predicted peak memory {peak_mb:,.0f} MB exceeds the {available:,.0f} MB available: lower "
-                   "ppo.minibatch or generation.max_new_tokens, use a smaller base.model, or keep "
+        warning = (f"predicted peak memory {peak_mb:,.0f} MB exceeds the {available:,.0f} MB available: "
+                   "lower ppo.minibatch or generation.max_new_tokens, use a smaller base.model, or keep "
                    "reference.mode = 'adapters-off'")
     return Estimate(base_params=base, lora_params=lora, value_head_params=head, total_params=base + lora,
                     trainable_params=trainable, weights_mb=weights / MB, optimizer_mb=optimizer / MB,
                     activations_mb=activations / MB, overhead_mb=PROCESS_OVERHEAD_MB, peak_mb=peak_mb,
-                    available_mb=available, flops_per_step=work.batched_flops + work.decode_flops, seconds_per_step=seconds,
-                    throughput_gflops=throughput, warning=warning)
+                    available_mb=available, flops_per_step=work.batched_flops + work.decode_flops,
+                    seconds_per_step=seconds, throughput_gflops=throughput, warning=warning)
 
 
 def cpu_flags(path: Path = Path("/proc/cpuinfo")) -> set[str]:

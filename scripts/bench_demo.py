@@ -39,7 +39,7 @@ def main() -> int:
     report = json.loads((out / "report.json").read_text())
     ev = report["evaluation"]
     b, a = ev["before"], ev["after"]
-    rc, jd = ev["change"]["reward_classifier"], ev["change"]["judge"]
+    rc = ev["change"]["reward_classifier"]
     rel = lambda x, y: (y - x) / x if x else float("nan")  # noqa: E731
     target_kl = report["config"]["kl"]["target"]
     checks = [

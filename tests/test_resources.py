@@ -100,13 +100,18 @@ def test_estimate_counts_match_the_loaded_policy(tiny_models: dict[str, Path]):
     assert est.value_head_params == sum(p.numel() for p in policy.net.value_head.parameters())
 
 
-def test_memory_warning_when_available_memory_is_small(t5_small_config: Path, monkeypatch: pytest.MonkeyPatch):
-    monkeypatch.setattr(resources.psutil, "virtual_memory", lambda: SimpleNamespace(available=100 * 1024 * 1024))
+def _available(mb: int) -> SimpleNamespace:
+    return SimpleNamespace(available=mb * 1024 * 1024)
+
+
+def test_memory_warning_when_available_memory_is_small(t5_small_config: Path,
+                                                      monkeypatch: pytest.MonkeyPatch):
+    monkeypatch.setattr(resources.psutil, "virtual_memory", lambda: _available(100))
     est = resources.estimate(_experiment(t5_small_config))
     assert est.available_mb == pytest.approx(100)
     assert est.warning is not None and "exceeds the 100 MB available" in est.warning
     assert resources.describe(est)[-1].startswith("!! predicted peak memory")
-    monkeypatch.setattr(resources.psutil, "virtual_memory", lambda: SimpleNamespace(available=10**6 * 1024 * 1024))
+    monkeypatch.setattr(resources.psutil, "virtual_memory", lambda: _available(10**6))
     assert resources.estimate(_experiment(t5_small_config)).warning is None
 
 
@@ -114,7 +119,8 @@ def test_fast_settings_are_booleans_and_follow_the_cpu_flags(monkeypatch: pytest
     settings = resources.fast_settings()
     assert all(isinstance(settings[key], bool) for key in ("bf16", "amx", "int8_dynamic"))
     cpuinfo = tmp_path / "cpuinfo"
-    cpuinfo.write_text("processor\t: 0\nflags\t\t: fpu sse2 avx512f avx512_bf16\n\nprocessor\t: 1\nflags\t\t: fpu\n")
+    cpuinfo.write_text("processor\t: 0\nflags\t\t: fpu sse2 avx512f avx512_bf16\n\n"
+                       "processor\t: 1\nflags\t\t: fpu\n")
     assert {"avx512f", "avx512_bf16", "fpu"} <= resources.cpu_flags(cpuinfo)
     assert resources.cpu_flags(tmp_path / "missing") == set()
     monkeypatch.setattr(resources.torch.backends.cpu, "get_cpu_capability", lambda: "AVX512")
@@ -131,12 +137,13 @@ def test_check_prints_the_estimate_and_the_fast_settings(tiny_models: dict[str, 
 
     config = tmp_path / "exp.toml"
     config.write_text(f'[base]\nmodel = "{tiny_models["t5"]}"\n[data]\nprompts = "prompts.jsonl"\n'
-                      '[reward]\nbackend = "callable"\nsource = "tests.tiny_classifiers:class_probabilities"\n'
-                      "harmful_index = 1\n")
+                      '[reward]\nbackend = "callable"\nharmful_index = 1\n'
+                      'source = "tests.tiny_classifiers:class_probabilities"\n')
     assert run_check(config, [], None) == 0
     printed = capsys.readouterr().out
     est = resources.estimate(_experiment(tiny_models["t5"]))
     assert f"parameters: {est.total_params:,} total, {est.trainable_params:,} trainable" in printed
-    assert "memory: predicted peak" in printed and "s per step" in printed and "fast settings: bf16" in printed
+    assert "memory: predicted peak" in printed and "s per step" in printed
+    assert "fast settings: bf16" in printed
     run_check(config, ["base.model=/nonexistent/base"], None)  # the verdict still prints without a base model
     assert "resources: not estimated: base.model" in capsys.readouterr().out
