@@ -1,6 +1,6 @@
 """Time the demo (build included) and check its acceptance figures from the saved report.
 
-    .venv/bin/python scripts/bench_demo.py [--out runs/bench-demo] [--cache DIR] [--quick]
+    .venv/bin/python scripts/bench_demo.py [--out runs/bench-demo] [--cache DIR] [--quick] [--set KEY=VALUE]
 
 Prints one line per criterion (measured value, target, pass/fail) and writes bench_demo.json beside the run.
 Use a fresh --cache to include the model build in the timing.
@@ -22,6 +22,8 @@ def main() -> int:
     parser.add_argument("--out", default="runs/bench-demo")
     parser.add_argument("--cache", help="alignrun cache folder (a fresh one times the build too)")
     parser.add_argument("--quick", action="store_true", help="the CI-sized demo")
+    parser.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
+                        help="override a key of configs/demo.toml")
     args = parser.parse_args()
     if args.cache:
         os.environ["ALIGNRUN_CACHE"] = args.cache
@@ -33,7 +35,7 @@ def main() -> int:
     t0 = time.perf_counter()
     build_demo()
     built = time.perf_counter() - t0
-    run_demo(out=str(out), quick=args.quick, quiet=True, overrides=[])
+    run_demo(out=str(out), quick=args.quick, quiet=True, overrides=args.overrides)
     total = time.perf_counter() - t0
 
     report = json.loads((out / "report.json").read_text())
