@@ -26,14 +26,16 @@ BYTES_PER_PARAM = {"fp32": 4, "fp16": 2, "bf16": 2, "int8": 1}  # common practic
 DTYPE_NAMES = {torch.float32: "fp32", torch.float16: "fp16", torch.bfloat16: "bf16", torch.int8: "int8"}
 ADAMW_STATE_BYTES = 8  # two fp32 moments per trainable parameter (Kingma & Ba 2015)
 GRAD_BYTES = 4  # one fp32 gradient per trainable parameter (common practice)
-# Resident memory of a process that has imported torch, transformers, peft, trl and accelerate and loaded a
-# model, beyond its weights: calibrated as measured peak RSS minus the rest of this estimate for the tiny
-# (2M-parameter) shape of scripts/bench on the development machine (2 cores, torch 2.13, Linux).
-PROCESS_OVERHEAD_MB = 600.0
+# Resident memory of a process that has imported torch, transformers, peft, trl and accelerate and run a
+# step, beyond weights, optimizer state and activations: measured peak RSS (607-630 MB over several runs)
+# minus the rest of this estimate (56 MB) for the tiny (2M) shape of scripts/bench on the development
+# machine (torch 2.13, Linux); importing the stack alone reaches 501 MB there.
+PROCESS_OVERHEAD_MB = 560.0
 # Fixed cost of one forward pass through one layer (module calls, small ops, autograd bookkeeping), which
-# no FLOP count sees: fitted as (measured - FLOP-predicted seconds) / layer passes on the tiny (2M) shape
-# of scripts/bench on the development machine, where it dominates; small and base shapes check it.
-LAYER_PASS_SECONDS = 0.005
+# no FLOP count sees: (measured - FLOP-predicted seconds) / layer passes on the tiny (2M) shape of
+# scripts/bench, where it dominates, was 3.6 and 5.1 ms in two runs on the development machine (2 cores
+# shared with other work); the small and base shapes check the value.
+LAYER_PASS_SECONDS = 0.004
 LOGITS_COPIES_UPDATE = 4  # [mb, T, V] fp32 alive in an update minibatch: logits, log-softmax, 2 gradients
 LOGITS_COPIES_ROLLOUT = 2  # [B, T, V] fp32: the per-step logits from generation and their stacked copy
 

@@ -1,6 +1,6 @@
 """Benchmark one alignrun step against a bare floor and a naive loop on three random T5-shaped models.
 
-    scripts/bench [--shapes tiny,small,base] [--out bench-results/bench.json] [--memory VARIANTS] [--threads N]
+    scripts/bench [--shapes tiny,small,base] [--out bench-results/bench.json] [--memory VARIANTS]
 
 For each shape a random model is saved as a Hugging Face folder (WordLevel tokenizer over invented words)
 and loaded by the real `build_policy`. In one process, after a one-epoch warm-up step of every variant,
@@ -52,7 +52,12 @@ sys.path.insert(1, str(Path(__file__).resolve().parent.parent))  # alignrun, whe
 import torch  # noqa: E402
 from accelerate import Accelerator  # noqa: E402
 from tokenizers import Tokenizer, models, pre_tokenizers, processors  # noqa: E402
-from transformers import GenerationConfig, PreTrainedTokenizerFast, T5Config, T5ForConditionalGeneration  # noqa: E402
+from transformers import (  # noqa: E402
+    GenerationConfig,
+    PreTrainedTokenizerFast,
+    T5Config,
+    T5ForConditionalGeneration,
+)
 from trl.trainer.utils import selective_log_softmax  # noqa: E402
 
 from alignrun import ppo, resources, rollout, trainer  # noqa: E402
@@ -107,11 +112,12 @@ def build_model(shape: Shape, out: Path) -> Path:
     tok = Tokenizer(models.WordLevel(vocab, unk_token="<unk>"))
     tok.pre_tokenizer = pre_tokenizers.WhitespaceSplit()
     tok.post_processor = processors.TemplateProcessing(single="$A </s>", special_tokens=[("</s>", EOS_ID)])
-    tokenizer = PreTrainedTokenizerFast(tokenizer_object=tok, pad_token="<pad>", eos_token="</s>", unk_token="<unk>",
-                                        model_max_length=512, padding_side="right")
+    tokenizer = PreTrainedTokenizerFast(tokenizer_object=tok, pad_token="<pad>", eos_token="</s>",
+                                        unk_token="<unk>", model_max_length=512, padding_side="right")
     config = T5Config(vocab_size=shape.vocab, d_model=shape.d_model, d_kv=shape.d_kv, num_heads=shape.heads,
-                      d_ff=shape.d_ff, num_layers=shape.layers, num_decoder_layers=shape.layers, dropout_rate=0.0,
-                      pad_token_id=PAD_ID, eos_token_id=EOS_ID, decoder_start_token_id=PAD_ID)
+                      d_ff=shape.d_ff, num_layers=shape.layers, num_decoder_layers=shape.layers,
+                      dropout_rate=0.0, pad_token_id=PAD_ID, eos_token_id=EOS_ID,
+                      decoder_start_token_id=PAD_ID)
     with torch.random.fork_rng(devices=[]):
         torch.manual_seed(0)
         model = T5ForConditionalGeneration(config).eval()
@@ -157,7 +163,8 @@ def linear_weights_to_bf16(model: torch.nn.Module) -> None:
     """
     tied = model.get_input_embeddings().weight
     for module in model.modules():
-        if isinstance(module, torch.nn.Linear) and not module.weight.requires_grad and module.weight is not tied:
+        frozen = isinstance(module, torch.nn.Linear) and not module.weight.requires_grad
+        if frozen and module.weight is not tied:
             module.weight = torch.nn.Parameter(module.weight.detach().to(torch.bfloat16), requires_grad=False)
     for param in model.parameters():  # copy the rest out of the memory-mapped file so its pages are released
         if not param.requires_grad and param.dtype == torch.float32:
@@ -217,7 +224,8 @@ def plain_generate(policy: Policy, ids: torch.Tensor, mask: torch.Tensor) -> tor
     """The same sampling call as rollout.sample, without asking for logits or hidden states."""
     return policy.lm.generate(input_ids=ids, attention_mask=mask, max_new_tokens=NEW_TOKENS, num_beams=1,
                               do_sample=True, temperature=1.0, top_k=0, top_p=1.0,
-                              pad_token_id=policy.tokenizer.pad_token_id, eos_token_id=policy.tokenizer.eos_token_id)
+                              pad_token_id=policy.tokenizer.pad_token_id,
+                              eos_token_id=policy.tokenizer.eos_token_id)
 
 
 @dataclass
@@ -239,19 +247,20 @@ class Setup:
 
 def make_setup(variant: str, model: Path, accelerator: Accelerator, policy: Policy | None = None,
                epochs: int = EPOCHS) -> Setup:
-    """A variant's policy (built by the real build_policy unless shared), optimizer, scorer and KL controller."""
+    """A variant's policy (the real build_policy unless shared), optimizer, scorer and KL controller."""
     cfg = variant_cfg(model, variant, epochs)
     policy = policy or load_policy(cfg, variant)
     trained = policy.lm if variant == "floor" else policy.net
-    optimizer = torch.optim.AdamW([p for p in trained.parameters() if p.requires_grad], lr=cfg.ppo.learning_rate)
+    optimizer = torch.optim.AdamW([p for p in trained.parameters() if p.requires_grad],
+                                  lr=cfg.ppo.learning_rate)
     net, optimizer = accelerator.prepare(policy.net, optimizer)
     return Setup(variant, cfg, policy, net, optimizer, accelerator, load_scorer(cfg.reward, "reward"),
                  ppo.KLController(beta=cfg.kl.coef), bench_prompts(model_vocab(model)))
 
 
 def ours_step(s: Setup, step: int) -> dict[str, float]:
-    row = trainer.train_step(s.policy, s.net, s.optimizer, s.accelerator, s.scorer, s.controller, s.prompts, s.cfg,
-                             step, CPU)
+    row = trainer.train_step(s.policy, s.net, s.optimizer, s.accelerator, s.scorer, s.controller, s.prompts,
+                             s.cfg, step, CPU)
     return {**CLOCK.take(), "reward": row["reward_s"], "step": row["step_s"]}
 
 
@@ -270,8 +279,8 @@ def floor_step(s: Setup, step: int) -> dict[str, float]:
     with CLOCK.part("update"):
         for _ in range(p.epochs):
             for idx in torch.randperm(len(s.prompts), generator=order).split(p.minibatch):
-                logits = lm(input_ids=ids[idx], attention_mask=mask[idx], decoder_input_ids=decoder_input[idx],
-                            use_cache=False).logits
+                logits = lm(input_ids=ids[idx], attention_mask=mask[idx],
+                            decoder_input_ids=decoder_input[idx], use_cache=False).logits
                 loss = -selective_log_softmax(logits, response[idx]).mean()
                 s.optimizer.zero_grad(set_to_none=True)
                 loss.backward()
@@ -311,7 +320,8 @@ def naive_step(s: Setup, step: int) -> dict[str, float]:
 
 
 STEPS: dict[str, Callable[[Setup, int], dict[str, float]]] = {
-    "ours": ours_step, "floor": floor_step, "naive": naive_step, "ours-bf16": ours_step, "ours-bf16w": ours_step,
+    "ours": ours_step, "floor": floor_step, "naive": naive_step,
+    "ours-bf16": ours_step, "ours-bf16w": ours_step,
 }
 
 
@@ -321,7 +331,7 @@ def cpu_seconds() -> float:
 
 
 def run_step(s: Setup, step: int) -> dict[str, float]:
-    """One step: generate / old_logp / reference / reward / update / other (= step minus the rest) / step / cpu."""
+    """One step: generate, old_logp, reference, reward, update, other (step minus the rest), step, cpu."""
     cpu = cpu_seconds()
     raw = STEPS[s.variant](s, step)
     out = {part: raw.get(part, 0.0) for part in PARTS if part != "other"}
@@ -355,7 +365,7 @@ def memory_child(model: Path, variant: str, epochs: int) -> dict[str, float]:
 
 
 def own_peak_rss_mb() -> float:
-    """This process's own peak RSS (VmHWM). Not ru_maxrss: Linux carries the parent's peak over fork + exec."""
+    """This process's own peak RSS (VmHWM); not ru_maxrss, which Linux carries over fork + exec."""
     for line in Path("/proc/self/status").read_text().splitlines():
         if line.startswith("VmHWM:"):
             return int(line.split()[1]) / 1024  # kB
@@ -391,10 +401,10 @@ def precision_check(model: Path) -> dict[str, dict[str, float]]:
         if fp32 is None:
             fp32 = ro
         with torch.no_grad(), autocast(cfg.base.precision, CPU):
-            own = selective_log_softmax(policy.net(ro.prompt_ids, ro.prompt_mask, ro.decoder_input)[0].float(),
-                                        ro.response_ids)
-            on_fp32 = selective_log_softmax(
-                policy.net(fp32.prompt_ids, fp32.prompt_mask, fp32.decoder_input)[0].float(), fp32.response_ids)
+            logits, _ = policy.net(ro.prompt_ids, ro.prompt_mask, ro.decoder_input)
+            own = selective_log_softmax(logits.float(), ro.response_ids)
+            logits, _ = policy.net(fp32.prompt_ids, fp32.prompt_mask, fp32.decoder_input)
+            on_fp32 = selective_log_softmax(logits.float(), fp32.response_ids)
         fp32_logp = on_fp32 if variant == "ours" else fp32_logp
         real = fp32.response_mask.bool()
         vs_fp32 = (on_fp32 - fp32_logp)[real].abs()
@@ -445,38 +455,40 @@ def _table(title: str, rows: dict[str, dict[str, float]], cols: list[str], fmt: 
 
 def print_tables(results: dict[str, Any]) -> None:
     summary = {name: entry["summary"] for name, entry in results["shapes"].items()}
-    _table("ratios, wall time (targets: ours/floor <= 1.10, ours/naive <= 0.85, fastest/floor <= 0.65)", summary,
-           ["ours/floor step", "ours/naive step", "bf16/floor step", "bf16w/floor step"])
+    _table("ratios, wall time (targets: ours/floor <= 1.10, ours/naive <= 0.85, fastest/floor <= 0.65)",
+           summary, ["ours/floor step", "ours/naive step", "bf16/floor step", "bf16w/floor step"])
     _table("ratios, process CPU time (less sensitive to other work on the machine)", summary,
            ["ours/floor cpu", "ours/naive cpu", "bf16/floor cpu", "bf16w/floor cpu"])
     _table("peak RSS ratios (target on base: <= 0.60) and estimate / measured (target 0.70-1.30)", summary,
            ["rss ours/naive", "rss bf16w/naive", "est/meas rss", "est/meas rss naive", "est/meas step"])
     print("\nseconds per step (one step after a one-epoch warm-up; other = step minus the named parts), "
           "CPU seconds, peak RSS (MB, own subprocess)")
-    print(f"{'shape':<7}{'variant':<11}" + "".join(f"{p:>10}" for p in (*PARTS, "step", "cpu")) + f"{'peak MB':>9}")
+    columns = (*PARTS, "step", "cpu")
+    print(f"{'shape':<7}{'variant':<11}" + "".join(f"{p:>10}" for p in columns) + f"{'peak MB':>9}")
     for name, entry in results["shapes"].items():
         for variant in VARIANTS:
             t = entry["time"][variant]
             rss = entry.get("memory", {}).get(variant, {}).get("peak_rss_mb", float("nan"))
-            print(f"{name:<7}{variant:<11}" + "".join(f"{t[p]:>10.2f}" for p in (*PARTS, "step", "cpu"))
-                  + f"{rss:>9.0f}")
+            print(f"{name:<7}{variant:<11}" + "".join(f"{t[p]:>10.2f}" for p in columns) + f"{rss:>9.0f}")
     print("\nestimate (alignrun.resources.estimate, fp32) vs measured")
     print(f"{'shape':<7}{'params':>12}{'trainable':>11}{'est s':>8}{'meas s':>8}{'est MB':>8}{'meas MB':>9}"
           f"{'naive est':>10}{'naive MB':>9}")
     for name, entry in results["shapes"].items():
         e, m = entry["estimate"], entry.get("memory", {})
+        rss = {v: m.get(v, {}).get("peak_rss_mb", float("nan")) for v in ("ours", "naive")}
         print(f"{name:<7}{e['ours']['total_params']:>12,}{e['ours']['trainable_params']:>11,}"
-              f"{e['ours']['seconds_per_step']:>8.2f}{entry['time']['ours']['step']:>8.2f}{e['ours']['peak_mb']:>8.0f}"
-              f"{m.get('ours', {}).get('peak_rss_mb', float('nan')):>9.0f}{e['naive']['peak_mb']:>10.0f}"
-              f"{m.get('naive', {}).get('peak_rss_mb', float('nan')):>9.0f}")
+              f"{e['ours']['seconds_per_step']:>8.2f}{entry['time']['ours']['step']:>8.2f}"
+              f"{e['ours']['peak_mb']:>8.0f}{rss['ours']:>9.0f}"
+              f"{e['naive']['peak_mb']:>10.0f}{rss['naive']:>9.0f}")
     check = results.get("precision_check")
     if check:
         print(f"\nprecision check on the {results['precision_check_shape']} model (tolerances: per-token "
               f"{TOKEN_TOLERANCE} nats, step-0 KL per reply {REPLY_KL_TOLERANCE} nats)")
         for variant, c in check.items():
-            print(f"  {variant:<11} log-probs of fp32's replies vs fp32: mean {c['logp_vs_fp32_mean']:.4f}, max "
-                  f"{c['logp_vs_fp32_max']:.4f}; first PPO ratio log-shift max {c['first_ratio_logshift_max']:.4f}; "
-                  f"step-0 KL per reply max {c['step0_kl_reply_max']:.4f} -> "
+            print(f"  {variant:<11} log-probs of fp32's replies vs fp32: mean {c['logp_vs_fp32_mean']:.4f}, "
+                  f"max {c['logp_vs_fp32_max']:.4f}; first PPO ratio log-shift max "
+                  f"{c['first_ratio_logshift_max']:.4f}; step-0 KL per reply max "
+                  f"{c['step0_kl_reply_max']:.4f} -> "
                   f"{'within' if c['within_tolerance'] else 'OUTSIDE'} tolerance")
 
 
@@ -497,7 +509,7 @@ def main(argv: list[str] | None = None) -> int:
                     help="variants whose peak RSS is measured, each in its own subprocess ('' for none; all: "
                     + ",".join(VARIANTS) + ")")
     ap.add_argument("--memory-epochs", type=int, default=EPOCHS,
-                    help="PPO epochs in the memory runs (1 is faster and reads ~5%% lower: less heap fragmentation)")
+                    help="PPO epochs in the memory runs (1 is faster, reads ~5%% lower: less fragmentation)")
     ap.add_argument("--threads", type=int, default=0, help="torch threads (0: all cores)")
     ap.add_argument("--child", choices=VARIANTS, help=argparse.SUPPRESS)
     ap.add_argument("--model", type=Path, help=argparse.SUPPRESS)
