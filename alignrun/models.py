@@ -19,6 +19,7 @@ from trl.trainer.utils import disable_dropout_in_model
 
 from alignrun.config import BaseSection, LoraSection, ReferenceSection
 from alignrun.errors import UserError
+from alignrun.report import replace_folder, staging_folder
 
 # Attention query/value projections per architecture family: LoRA's default placement (Hu et al. 2021, §4.2).
 QUERY_VALUE = {
@@ -201,31 +202,17 @@ def build_policy(base: BaseSection, lora: LoraSection, reference: ReferenceSecti
 
 def save_adapter(policy: Policy, folder: Path) -> None:
     """peft's adapter format (safetensors) plus value_head.safetensors; written to a temp folder then renamed."""
-    folder = Path(folder)
-    tmp = folder.with_name(f".{folder.name}.tmp")
-    if tmp.exists():
-        _rmtree(tmp)
+    tmp = staging_folder(Path(folder))
     policy.lm.save_pretrained(str(tmp), safe_serialization=True)
     policy.tokenizer.save_pretrained(tmp)
     save_file({k: v.detach().cpu().contiguous() for k, v in policy.net.value_head.state_dict().items()},
               tmp / "value_head.safetensors")
-    old = folder.with_name(f".{folder.name}.old")
-    if folder.exists():
-        folder.rename(old)
-    tmp.rename(folder)
-    if old.exists():
-        _rmtree(old)
+    replace_folder(tmp, Path(folder))
 
 
 def load_adapter_into(policy: Policy, folder: Path) -> None:
     set_peft_model_state_dict(policy.lm, load_file(Path(folder) / "adapter_model.safetensors"))
     policy.net.value_head.load_state_dict(load_file(Path(folder) / "value_head.safetensors"))
-
-
-def _rmtree(path: Path) -> None:
-    import shutil
-
-    shutil.rmtree(path, ignore_errors=True)
 
 
 def export_merged(run_dir: str | Path, out: str | Path) -> Path:

@@ -71,6 +71,28 @@ def write_text_atomic(path: Path, text: str) -> None:
         raise
 
 
+def staging_folder(folder: Path) -> Path:
+    """An empty sibling folder to build `folder` in; `replace_folder` then swaps it into place."""
+    import shutil
+
+    tmp = Path(folder).with_name(f".{Path(folder).name}.tmp")
+    shutil.rmtree(tmp, ignore_errors=True)  # a leftover from a killed process
+    return tmp
+
+
+def replace_folder(tmp: Path, folder: Path) -> None:
+    """Swap a fully written folder into place by renames, so a reader sees the old or the new one, never half."""
+    import shutil
+
+    folder = Path(folder)
+    old = folder.with_name(f".{folder.name}.old")
+    shutil.rmtree(old, ignore_errors=True)
+    if folder.exists():
+        folder.rename(old)
+    Path(tmp).rename(folder)
+    shutil.rmtree(old, ignore_errors=True)
+
+
 def write_json_atomic(path: Path, obj: Any) -> None:
     write_text_atomic(path, json.dumps(obj, indent=2, ensure_ascii=False, allow_nan=False, default=_jsonable) + "\n")
 

@@ -33,7 +33,15 @@ from alignrun.models import (
     set_threads,
 )
 from alignrun.preflight import require_polarity
-from alignrun.report import RunFolder, build_report, write_json_atomic, write_report, write_text_atomic
+from alignrun.report import (
+    RunFolder,
+    build_report,
+    replace_folder,
+    staging_folder,
+    write_json_atomic,
+    write_report,
+    write_text_atomic,
+)
 from alignrun.reward import load_scorer, reward_from_scores
 from alignrun.rollout import Rollout, rollout
 
@@ -143,7 +151,7 @@ def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Opti
 def save_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimizer,
                     controller: ppo.KLController, step: int) -> None:
     """Adapter, value head, optimiser, KL controller, RNG states and data position (= step), atomically."""
-    tmp = folder.with_name(f".{folder.name}.tmp")
+    tmp = staging_folder(folder)
     save_adapter(policy, tmp / "adapter")
     np_state: tuple[Any, ...] = np.random.get_state(legacy=True)  # type: ignore[assignment]
     torch.save({
@@ -152,14 +160,7 @@ def save_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimiz
         "rng_numpy": [np_state[0], torch.from_numpy(np_state[1].astype(np.int64)), *np_state[2:]],
     }, tmp / "trainer_state.pt")
     write_json_atomic(tmp / "checkpoint.json", {"step": step})
-    old = folder.with_name(f".{folder.name}.old")
-    if folder.exists():
-        folder.rename(old)
-    tmp.rename(folder)
-    if old.exists():
-        import shutil
-
-        shutil.rmtree(old)
+    replace_folder(tmp, folder)
 
 
 def load_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimizer,
