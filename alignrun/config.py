@@ -39,7 +39,9 @@ class BaseSection(Section):
     trust_remote_code: bool = Field(False, description="run model code shipped with the weights (code execution)")
     device: Literal["auto", "cpu", "cuda"] = Field("auto", description="auto uses a GPU only when one is present")
     threads: int = Field(0, ge=0, le=1024, description="CPU threads; 0 means all cores")
-    precision: Literal["fp32", "bf16"] = Field("fp32", description="compute precision (bf16 autocast on supporting CPUs)")
+    precision: Literal["fp32", "bf16"] = Field(
+        "fp32", description="compute precision; bf16 = autocast plus frozen linear weights stored in bf16 (CPUs with "
+        "avx512_bf16/AMX, or a GPU)")
 
 
 class LoraSection(Section):
@@ -49,6 +51,10 @@ class LoraSection(Section):
     alpha: float = Field(16.0, gt=0)
     dropout: float = Field(0.0, ge=0, lt=1)
     targets: str | list[str] = Field("auto", description='"auto" (query/value projections), "all-linear", or module names')
+    scope: Literal["decoder", "encoder-decoder"] = Field(
+        "decoder", description="which stacks get adapters; with 'decoder' the frozen encoder runs once per step and its "
+        "output is reused by sampling, the reference and every PPO epoch (about a third less compute per step)"
+    )
 
 
 class ReferenceSection(Section):

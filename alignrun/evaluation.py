@@ -15,7 +15,7 @@ from alignrun import metrics
 from alignrun.config import Experiment
 from alignrun.models import Policy
 from alignrun.report import write_jsonl_atomic
-from alignrun.rollout import encode_prompts, reference_logprobs, response_mask, sample
+from alignrun.rollout import encode_prompts, frozen_encoding, reference_logprobs, response_mask, sample
 
 CHUNK = 64  # sequences per generation batch
 
@@ -44,11 +44,13 @@ def _generate(policy: Policy, prompts: list[str], cfg: Experiment, device: torch
     lp, kl, nll, ntok = [], [], [], []
     for i in range(0, len(prompts), CHUNK):
         ids, mask = encode_prompts(tok, prompts[i: i + CHUNK], cfg.generation.max_prompt_tokens, device)
-        seqs, logp, _ = sample(policy, ids, mask, cfg.generation.max_new_tokens, do_sample=do_sample, with_values=False)
+        hidden = frozen_encoding(policy, ids, mask)
+        seqs, logp, _ = sample(policy, ids, mask, cfg.generation.max_new_tokens, do_sample=do_sample,
+                               with_values=False, encoder_hidden=hidden)
         resp = seqs[:, 1:]
         m = response_mask(resp, tok.eos_token_id)
         resp = torch.where(m.bool(), resp, torch.full_like(resp, tok.pad_token_id))
-        ref = reference_logprobs(policy, ids, mask, seqs[:, :-1], resp)
+        ref = reference_logprobs(policy, ids, mask, seqs[:, :-1], resp, hidden)
         lp.append((logp * m).sum(1))
         kl.append(((logp - ref) * m).sum(1))
         nll.append(-(ref * m).sum(1))

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import copy
 import os
+import re
 from collections.abc import Iterator
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass
@@ -15,6 +16,7 @@ from peft import LoraConfig, PeftModel, TaskType, get_peft_model, set_peft_model
 from safetensors.torch import load_file, save_file
 from torch import nn
 from transformers import AutoConfig, AutoModelForSeq2SeqLM, AutoTokenizer, PreTrainedTokenizerBase
+from transformers.modeling_outputs import BaseModelOutput
 from trl.trainer.utils import disable_dropout_in_model
 
 from alignrun.config import BaseSection, LoraSection, ReferenceSection
@@ -83,7 +85,8 @@ def load_base(section: BaseSection, device: torch.device) -> tuple[nn.Module, Pr
         raise UserError(f"base.model: {section.model} is a {config.model_type!r} model, not an encoder-decoder "
                         "(seq2seq) language model; alignrun trains T5-, BART-, Pegasus-style models")
     try:
-        model = AutoModelForSeq2SeqLM.from_pretrained(section.model, **kwargs)
+        # fp32 whatever dtype the checkpoint was saved in: the adapters and the optimizer need it
+        model = AutoModelForSeq2SeqLM.from_pretrained(section.model, dtype=torch.float32, **kwargs)
     except ValueError as exc:
         raise UserError(f"base.model: {section.model} cannot be loaded as a seq2seq language model: {exc}") from None
     local = Path(section.model).expanduser()
@@ -147,11 +150,16 @@ class PolicyWithValue(nn.Module):
         self.lm = lm
         self.value_head = value_head
 
-    def forward(self, input_ids: torch.Tensor, attention_mask: torch.Tensor,
-                decoder_input_ids: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    def forward(self, input_ids: torch.Tensor, attention_mask: torch.Tensor, decoder_input_ids: torch.Tensor,
+                encoder_hidden: torch.Tensor | None = None) -> tuple[torch.Tensor, torch.Tensor]:
         out = self.lm(input_ids=input_ids, attention_mask=attention_mask, decoder_input_ids=decoder_input_ids,
-                      output_hidden_states=True, use_cache=False)
+                      encoder_outputs=encoder_outputs(encoder_hidden), output_hidden_states=True, use_cache=False)
         return out.logits, self.value_head(out.decoder_hidden_states[-1])
+
+
+def encoder_outputs(hidden: torch.Tensor | None) -> BaseModelOutput | None:
+    """A saved encoder output in the form the seq2seq forward and generate accept (None: encode afresh)."""
+    return None if hidden is None else BaseModelOutput(last_hidden_state=hidden)
 
 
 @dataclass
@@ -161,6 +169,7 @@ class Policy:
     reference_copy: nn.Module | None  # only for reference.mode = "copy"
     trainable_params: int
     total_params: int
+    encoder_frozen: bool = False  # no adapter in the encoder: its output is computed once per batch and reused
 
     @property
     def lm(self) -> PeftModel:
@@ -176,13 +185,48 @@ class Policy:
                 yield self.lm
 
 
+_DECODER = re.compile(r"(.*\.)?decoder\.")  # module paths inside the decoder stack (T5, BART, Pegasus, ...)
+
+
+def in_decoder(module_name: str) -> bool:
+    return _DECODER.match(module_name) is not None
+
+
+def _decoder_only(model: nn.Module, targets: str | list[str]) -> str:
+    """A peft target pattern for the chosen linear layers of the decoder stack only."""
+    output = model.get_output_embeddings()  # type: ignore[operator]
+    leaves = sorted({name.rsplit(".", 1)[-1] for name, m in model.named_modules()
+                     if isinstance(m, nn.Linear) and m is not output and in_decoder(name)
+                     and (targets == "all-linear" or name.rsplit(".", 1)[-1] in targets)})
+    if not leaves:
+        named = targets if isinstance(targets, str) else ", ".join(targets)
+        raise UserError(f"lora.scope = 'decoder': none of the layers {named} sits in a 'decoder' module of this "
+                        f"{getattr(model.config, 'model_type', '')} model; use lora.scope = 'encoder-decoder'")
+    return rf"(.*\.)?decoder\..*\.({'|'.join(re.escape(n) for n in leaves)})"
+
+
 def wrap_lora(model: nn.Module, lora: LoraSection) -> PeftModel:
     """W' = W + (alpha/r) B A with B = 0 at the start, so the policy equals the base at step 0 (Hu et al. 2021)."""
+    targets = lora_targets(model, lora.targets)
     peft_cfg = LoraConfig(task_type=TaskType.SEQ_2_SEQ_LM, r=lora.rank, lora_alpha=lora.alpha,  # type: ignore[arg-type]
-                          lora_dropout=lora.dropout, target_modules=lora_targets(model, lora.targets))
+                          lora_dropout=lora.dropout,
+                          target_modules=_decoder_only(model, targets) if lora.scope == "decoder" else targets)
     lm = get_peft_model(model, peft_cfg)
     lm.eval()  # dropout stays off in rollouts and updates alike
     return lm
+
+
+def store_frozen_linear_in_bf16(model: nn.Module) -> None:
+    """Under bf16 autocast every frozen linear weight is rounded to bf16 at each matmul anyway, so keeping them in
+    bf16 gives the same numbers with half their memory and no cast per call. Adapters (trainable), embeddings and
+    an output projection tied to them, norms and the value head stay fp32."""
+    tied = model.get_input_embeddings().weight  # type: ignore[operator]
+    for module in model.modules():
+        if isinstance(module, nn.Linear) and not module.weight.requires_grad and module.weight is not tied:
+            module.weight = nn.Parameter(module.weight.detach().to(torch.bfloat16), requires_grad=False)
+    for param in model.parameters():  # copy the rest out of the memory-mapped checkpoint so its pages are freed
+        if not param.requires_grad and param.dtype == torch.float32:
+            param.data = param.data.clone()
 
 
 def build_policy(base: BaseSection, lora: LoraSection, reference: ReferenceSection,
@@ -193,11 +237,16 @@ def build_policy(base: BaseSection, lora: LoraSection, reference: ReferenceSecti
     if reference.mode == "copy":
         ref_copy = copy.deepcopy(model).eval().requires_grad_(False)
     lm = wrap_lora(model, lora)
+    if base.precision == "bf16":
+        for frozen in (lm, ref_copy):
+            if frozen is not None:
+                store_frozen_linear_in_bf16(frozen)
     config: Any = model.config
     head = ValueHead(int(getattr(config, "d_model", None) or config.hidden_size)).to(device)
     trainable = sum(p.numel() for p in lm.parameters() if p.requires_grad)
     total = sum(p.numel() for p in lm.parameters())
-    return Policy(PolicyWithValue(lm, head), tokenizer, ref_copy, trainable, total)
+    encoder_frozen = not any(p.requires_grad for p in lm.get_encoder().parameters())
+    return Policy(PolicyWithValue(lm, head), tokenizer, ref_copy, trainable, total, encoder_frozen)
 
 
 def save_adapter(policy: Policy, folder: Path) -> None:

@@ -23,7 +23,6 @@ from alignrun.errors import UserError
 
 MB = 1024 * 1024
 BYTES_PER_PARAM = {"fp32": 4, "fp16": 2, "bf16": 2, "int8": 1}  # common practice: bytes to hold one weight
-DTYPE_NAMES = {torch.float32: "fp32", torch.float16: "fp16", torch.bfloat16: "bf16", torch.int8: "int8"}
 ADAMW_STATE_BYTES = 8  # two fp32 moments per trainable parameter (Kingma & Ba 2015)
 GRAD_BYTES = 4  # one fp32 gradient per trainable parameter (common practice)
 # Resident memory of a process that has imported torch, transformers, peft, trl and accelerate and run a
@@ -90,19 +89,32 @@ def meta_model(cfg: Experiment) -> nn.Module:
         return AutoModelForSeq2SeqLM.from_config(config, trust_remote_code=base.trust_remote_code)
 
 
-def lora_param_count(model: Any, targets: str | list[str], rank: int) -> int:
+def lora_param_count(model: Any, targets: str | list[str], rank: int, scope: str = "encoder-decoder") -> int:
     """Sum of r * (d_in + d_out) over the adapted linear layers (Hu et al. 2021).
 
-    targets: leaf module names, or "all-linear" (every linear layer except the output projection).
+    targets: leaf module names, or "all-linear" (every linear layer except the output projection);
+    scope: "encoder-decoder", or "decoder" for the decoder stack's layers only.
     """
+    from alignrun.models import in_decoder
+
     output = model.get_output_embeddings() if hasattr(model, "get_output_embeddings") else None
     total = 0
     for name, module in model.named_modules():
-        if not isinstance(module, nn.Linear) or module is output:
+        if not isinstance(module, nn.Linear) or module is output or (scope == "decoder" and not in_decoder(name)):
             continue
         if targets == "all-linear" or name.rsplit(".", 1)[-1] in targets:
             total += rank * (module.in_features + module.out_features)
     return total
+
+
+def base_weight_bytes(model: Any, precision: str) -> int:
+    """The base weights as alignrun holds them: all fp32, or under bf16 the linear layers at 2 bytes except an
+    output projection tied to the input embeddings (4 and 2 bytes per weight: common practice)."""
+    tied = model.get_input_embeddings().weight
+    halved = {id(m.weight): m.weight.numel() for m in model.modules()
+              if precision == "bf16" and isinstance(m, nn.Linear) and m.weight is not tied}
+    half = sum(halved.values())
+    return weight_bytes(_params(model) - half, "fp32") + weight_bytes(half, "bf16")
 
 
 def _params(module: nn.Module, skip_embeddings: bool = False) -> int:
@@ -121,20 +133,18 @@ class Dims:
     vocab: int
     enc_params: int  # encoder non-embedding parameters: forward FLOPs per encoder token / 2
     dec_params: int  # decoder non-embedding parameters + output projection: FLOPs per decoder token / 2
-    dtype: str  # of the stored weights
 
 
 def model_dims(model: Any) -> Dims:  # a transformers seq2seq model (its typing is loose)
     c = model.config
     head = model.get_output_embeddings()
-    dtype = DTYPE_NAMES.get(next(model.parameters()).dtype, "fp32")  # the checkpoint's saved dtype, as loaded
     return Dims(
         d_model=c.d_model, d_ff=getattr(c, "d_ff", None) or getattr(c, "encoder_ffn_dim", 4 * c.d_model),
         heads=int(getattr(c, "num_heads", None) or getattr(c, "encoder_attention_heads", None) or 1),
         enc_layers=int(getattr(c, "num_layers", None) or getattr(c, "encoder_layers", None) or 1),
         dec_layers=int(getattr(c, "num_decoder_layers", None) or getattr(c, "decoder_layers", None) or 1),
         vocab=c.vocab_size, enc_params=_params(model.get_encoder(), skip_embeddings=True),
-        dec_params=_params(model.get_decoder(), skip_embeddings=True) + head.weight.numel(), dtype=dtype,
+        dec_params=_params(model.get_decoder(), skip_embeddings=True) + head.weight.numel(),
     )
 
 
@@ -174,15 +184,17 @@ def step_work(d: Dims, cfg: Experiment, trainable: int) -> Work:
 
     Forward: 2 x non-embedding parameters x tokens (Kaplan et al. 2020). Backward through frozen weights
     needs only input gradients (another 2 x) plus weight gradients of the trainable ones (2 x trainable x
-    tokens); with every weight trainable this gives the usual 3 x forward.
+    tokens); with every weight trainable this gives the usual 3 x forward. With lora.scope = "decoder" the
+    encoder runs once per step and the reference and the updates run the decoder only.
     """
     b, p, t = cfg.ppo.prompts_per_step, cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens
     epochs, minibatches = cfg.ppo.epochs, cfg.ppo.prompts_per_step // cfg.ppo.minibatch
-    forward = 2 * (d.enc_params * b * p + d.dec_params * b * t)
-    backward = forward + 2 * trainable * b * (p + t)
+    trained_encoder = cfg.lora.scope != "decoder"
     encode = 2 * d.enc_params * b * p  # sampling encodes the prompts once
     decode = 2 * d.dec_params * b * t  # then runs the decoder and output projection once per new token
-    layers = d.enc_layers + d.dec_layers + 1  # + the output projection and loss
+    forward = encode * trained_encoder + 2 * d.dec_params * b * t
+    backward = forward + 2 * trainable * b * (p * trained_encoder + t)
+    layers = d.enc_layers * trained_encoder + d.dec_layers + 1  # + the output projection and loss
     passes = (d.enc_layers + t * (d.dec_layers + 1)) + layers + epochs * minibatches * 3 * layers
     return Work(batched_flops=encode + forward + epochs * (forward + backward), decode_flops=decode,
                 layer_passes=passes)
@@ -196,7 +208,7 @@ def activation_bytes(d: Dims, cfg: Experiment) -> int:
     """
     b, mb = cfg.ppo.prompts_per_step, cfg.ppo.minibatch
     p, t = cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens
-    enc = mb * p * d.enc_layers * (8 * d.d_model + 2 * d.d_ff + 2 * d.heads * p)
+    enc = mb * p * d.enc_layers * (8 * d.d_model + 2 * d.d_ff + 2 * d.heads * p) * (cfg.lora.scope != "decoder")
     dec = mb * t * d.dec_layers * (12 * d.d_model + 2 * d.d_ff + 2 * d.heads * (t + p))
     update = 4 * (enc + dec + LOGITS_COPIES_UPDATE * mb * t * d.vocab)
     rollout = 4 * LOGITS_COPIES_ROLLOUT * b * t * d.vocab
@@ -210,11 +222,11 @@ def estimate(cfg: Experiment) -> Estimate:
     model = meta_model(cfg)
     d = model_dims(model)
     base = _params(model)
-    lora = lora_param_count(model, lora_targets(model, cfg.lora.targets), cfg.lora.rank)
+    lora = lora_param_count(model, lora_targets(model, cfg.lora.targets), cfg.lora.rank, cfg.lora.scope)
     head = d.d_model + 1
     trainable = lora + head
     copies = 2 if cfg.reference.mode == "copy" else 1
-    weights = weight_bytes(base, d.dtype) * copies + weight_bytes(lora + head, "fp32")
+    weights = base_weight_bytes(model, cfg.base.precision) * copies + weight_bytes(lora + head, "fp32")
     optimizer = optimizer_bytes(trainable)
     activations = activation_bytes(d, cfg)
     peak_mb = (weights + optimizer + activations) / MB + PROCESS_OVERHEAD_MB

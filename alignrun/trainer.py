@@ -47,7 +47,15 @@ from alignrun.rollout import Rollout, rollout
 
 
 def peak_rss_mb() -> float:
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux reports KiB
+    """This process's own peak resident memory: VmHWM, not ru_maxrss, which Linux carries over fork + exec (a
+    sweep worker would report its parent's peak)."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024  # kB
+    except OSError:
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # KiB on Linux
 
 
 def seed_everything(seed: int) -> None:
@@ -81,7 +89,7 @@ def ppo_update(net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerat
         for idx in torch.randperm(n, generator=gen).split(mb):
             part = ro.select(idx)
             with autocast(cfg.base.precision, device):
-                logits, values = net(part.prompt_ids, part.prompt_mask, part.decoder_input)
+                logits, values = net(part.prompt_ids, part.prompt_mask, part.decoder_input, part.encoder_hidden)
             logits = logits.float()
             logp = selective_log_softmax(logits, part.response_ids)
             mask = part.response_mask

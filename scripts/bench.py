@@ -3,22 +3,24 @@
     scripts/bench [--shapes tiny,small,base] [--out bench-results/bench.json] [--memory VARIANTS]
 
 For each shape a random model is saved as a Hugging Face folder (WordLevel tokenizer over invented words)
-and loaded by the real `build_policy`. In one process, after a one-epoch warm-up step of every variant,
-it times one step of each:
+and loaded by the real `build_policy`. In one process, after a warm-up step of every variant (one minibatch,
+one epoch), it times one step of each:
 
-    ours        alignrun.trainer.train_step in fp32: old log-probs and values from the generation pass,
-                reference = the same weights with adapters disabled, reward, PPO update
+    ours        alignrun.trainer.train_step with the defaults (fp32, LoRA on the decoder's query/value
+                projections): the frozen encoder runs once and its output serves sampling, the reference
+                and every PPO epoch; old log-probs and values come from the generation pass; reference =
+                the same weights with adapters disabled; reward; PPO update
     floor       bare compute: the same generate, one reference forward, the same epochs x minibatches of
-                forward/backward/optimizer step, nothing else (no value head, no bookkeeping)
+                forward/backward/optimizer step, nothing else (no value head, no bookkeeping, no reuse)
     naive       a deep-copied frozen reference model plus an extra policy forward for old log-probs and
-                values, then the same reward, advantages and PPO update as ours
-    ours-bf16   ours with base.precision = "bf16" (autocast over fp32 weights), the fastest setting today
-    ours-bf16w  PROPOSED, not in alignrun yet: ours-bf16 with the frozen linear weights stored in bf16
-                (the same numbers as ours-bf16; adapters, embeddings, norms and value head stay fp32)
+                values, then the same reward, advantages and PPO update (full forwards, no reuse)
+    ours-bf16   ours with base.precision = "bf16": autocast, frozen linear weights stored in bf16
+    ours-ed, floor-ed, naive-ed
+                the same three with lora.scope = "encoder-decoder" (adapters in both stacks: nothing to reuse)
 
 Wall time and process CPU time are both recorded: CPU time is less disturbed by other work on the machine.
 Peak RSS is per process, so each variant's memory is measured in its own subprocess (one step, VmHWM):
-by default ours, naive and ours-bf16w (floor and ours-bf16 track ours within ~5%).
+by default ours, naive and ours-bf16 (the floor tracks ours within ~5%).
 All variants generate exactly 32 tokens: the saved generation config sets min_new_tokens, and every
 variant calls the same generate.
 """
@@ -67,7 +69,8 @@ from alignrun.reward import load_scorer, reward_from_scores  # noqa: E402
 
 PAD_ID, EOS_ID, UNK_ID = 0, 1, 2
 PROMPTS, PROMPT_TOKENS, NEW_TOKENS, MINIBATCH, EPOCHS, RANK = 16, 64, 32, 8, 4, 8
-VARIANTS = ("ours", "floor", "naive", "ours-bf16", "ours-bf16w")
+VARIANTS = ("ours", "floor", "naive", "ours-bf16", "ours-ed", "floor-ed", "naive-ed")
+PAIRED = {"floor": "ours", "floor-ed": "ours-ed"}  # the floor runs on its own variant's policy
 PARTS = ("generate", "old_logp", "reference", "reward", "update", "other")
 CPU = torch.device("cpu")
 
@@ -143,8 +146,8 @@ def bench_prompts(vocab: int, seed: int = 1) -> list[str]:
 def variant_cfg(model: Path, variant: str, epochs: int = EPOCHS) -> Experiment:
     return Experiment.model_validate({
         "base": {"model": str(model), "device": "cpu", "precision": "bf16" if "bf16" in variant else "fp32"},
-        "lora": {"rank": RANK},
-        "reference": {"mode": "copy" if variant == "naive" else "adapters-off"},
+        "lora": {"rank": RANK, "scope": "encoder-decoder" if variant.endswith("-ed") else "decoder"},
+        "reference": {"mode": "copy" if variant.startswith("naive") else "adapters-off"},
         "reward": {"backend": "callable", "source": "bench:length_harm"},
         "ppo": {"prompts_per_step": PROMPTS, "minibatch": MINIBATCH, "epochs": epochs},
         "generation": {"max_new_tokens": NEW_TOKENS, "max_prompt_tokens": PROMPT_TOKENS},
@@ -153,29 +156,8 @@ def variant_cfg(model: Path, variant: str, epochs: int = EPOCHS) -> Experiment:
     })
 
 
-def linear_weights_to_bf16(model: torch.nn.Module) -> None:
-    """PROPOSED for models.build_policy when base.precision = "bf16", emulated here on the loaded policy.
-
-    Under bf16 autocast every frozen linear weight is rounded to bf16 at each matmul anyway, so storing those
-    weights in bf16 once gives the same numbers with half their memory and no cast per call. The adapters
-    (trainable), the embeddings (and an output projection tied to them), the layer norms and the value head
-    stay fp32.
-    """
-    tied = model.get_input_embeddings().weight
-    for module in model.modules():
-        frozen = isinstance(module, torch.nn.Linear) and not module.weight.requires_grad
-        if frozen and module.weight is not tied:
-            module.weight = torch.nn.Parameter(module.weight.detach().to(torch.bfloat16), requires_grad=False)
-    for param in model.parameters():  # copy the rest out of the memory-mapped file so its pages are released
-        if not param.requires_grad and param.dtype == torch.float32:
-            param.data = param.data.clone()
-
-
-def load_policy(cfg: Experiment, variant: str) -> Policy:
-    policy = build_policy(cfg.base, cfg.lora, cfg.reference, CPU)
-    if variant == "ours-bf16w":
-        linear_weights_to_bf16(policy.lm)
-    return policy
+def load_policy(cfg: Experiment) -> Policy:
+    return build_policy(cfg.base, cfg.lora, cfg.reference, CPU)
 
 
 # ---------------------------------------------------------------------------------------- the variants
@@ -215,6 +197,7 @@ PPO_UPDATE = trainer.ppo_update  # the naive loop calls it directly, timed by it
 
 def instrument() -> None:
     """Time the real rollout and update functions from inside train_step (the bench process only)."""
+    CLOCK.wrap(rollout, "frozen_encoding", "generate")  # encoding the prompts belongs to sampling
     CLOCK.wrap(rollout, "sample", "generate")
     CLOCK.wrap(rollout, "reference_logprobs", "reference")
     CLOCK.wrap(trainer, "ppo_update", "update")
@@ -240,17 +223,18 @@ class Setup:
     controller: ppo.KLController
     prompts: list[str]
 
-    def with_epochs(self, epochs: int) -> Setup:
-        cfg = self.cfg.model_copy(update={"ppo": self.cfg.ppo.model_copy(update={"epochs": epochs})})
-        return Setup(**{**self.__dict__, "cfg": cfg})
+    def warm_up(self) -> Setup:
+        """The same variant on one minibatch for one epoch: first-call costs are paid outside the timing."""
+        cfg = self.cfg.model_copy(update={"ppo": self.cfg.ppo.model_copy(update={"epochs": 1})})
+        return Setup(**{**self.__dict__, "cfg": cfg, "prompts": self.prompts[:MINIBATCH]})
 
 
 def make_setup(variant: str, model: Path, accelerator: Accelerator, policy: Policy | None = None,
                epochs: int = EPOCHS) -> Setup:
     """A variant's policy (the real build_policy unless shared), optimizer, scorer and KL controller."""
     cfg = variant_cfg(model, variant, epochs)
-    policy = policy or load_policy(cfg, variant)
-    trained = policy.lm if variant == "floor" else policy.net
+    policy = policy or load_policy(cfg)
+    trained = policy.lm if variant.startswith("floor") else policy.net
     optimizer = torch.optim.AdamW([p for p in trained.parameters() if p.requires_grad],
                                   lr=cfg.ppo.learning_rate)
     net, optimizer = accelerator.prepare(policy.net, optimizer)
@@ -321,7 +305,7 @@ def naive_step(s: Setup, step: int) -> dict[str, float]:
 
 STEPS: dict[str, Callable[[Setup, int], dict[str, float]]] = {
     "ours": ours_step, "floor": floor_step, "naive": naive_step,
-    "ours-bf16": ours_step, "ours-bf16w": ours_step,
+    "ours-bf16": ours_step, "ours-ed": ours_step, "floor-ed": floor_step, "naive-ed": naive_step,
 }
 
 
@@ -343,16 +327,15 @@ def run_step(s: Setup, step: int) -> dict[str, float]:
 
 
 def time_shape(model: Path) -> dict[str, dict[str, float]]:
-    """One process: ours, floor and ours-bf16 share one policy; naive and ours-bf16w load their own.
-    Every variant gets a one-epoch warm-up step, then one full step each is timed."""
+    """One process: each floor shares its ours variant's policy; the other variants load their own.
+    Every variant gets a warm-up step (one minibatch, one epoch), then one full step each is timed."""
     accelerator = Accelerator(cpu=True)
-    ours = make_setup("ours", model, accelerator)
-    setups = {"ours": ours, "floor": make_setup("floor", model, accelerator, policy=ours.policy),
-              "naive": make_setup("naive", model, accelerator),
-              "ours-bf16": make_setup("ours-bf16", model, accelerator, policy=ours.policy),
-              "ours-bf16w": make_setup("ours-bf16w", model, accelerator)}
+    setups: dict[str, Setup] = {}
+    for v in VARIANTS:
+        shared = setups[PAIRED[v]].policy if v in PAIRED else None
+        setups[v] = make_setup(v, model, accelerator, policy=shared)
     for setup in setups.values():
-        run_step(setup.with_epochs(1), 0)
+        run_step(setup.warm_up(), 0)
     torch.manual_seed(0)
     return {name: run_step(setup, 1) for name, setup in setups.items()}
 
@@ -361,15 +344,7 @@ def memory_child(model: Path, variant: str, epochs: int) -> dict[str, float]:
     """In a fresh process: build the variant, run one step, report this process's peak RSS."""
     setup = make_setup(variant, model, Accelerator(cpu=True), epochs=epochs)
     row = run_step(setup, 0)
-    return {"peak_rss_mb": own_peak_rss_mb(), "step_s": row["step"]}
-
-
-def own_peak_rss_mb() -> float:
-    """This process's own peak RSS (VmHWM); not ru_maxrss, which Linux carries over fork + exec."""
-    for line in Path("/proc/self/status").read_text().splitlines():
-        if line.startswith("VmHWM:"):
-            return int(line.split()[1]) / 1024  # kB
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    return {"peak_rss_mb": trainer.peak_rss_mb(), "step_s": row["step"]}
 
 
 def measure_memory(model: Path, variant: str, epochs: int) -> dict[str, float]:
@@ -392,9 +367,9 @@ def precision_check(model: Path) -> dict[str, dict[str, float]]:
     out: dict[str, dict[str, float]] = {}
     fp32: rollout.Rollout | None = None
     fp32_logp = torch.empty(0)
-    for variant in ("ours", "ours-bf16", "ours-bf16w"):
+    for variant in ("ours", "ours-bf16"):
         cfg = variant_cfg(model, variant)
-        policy = load_policy(cfg, variant)
+        policy = load_policy(cfg)
         torch.manual_seed(0)
         with autocast(cfg.base.precision, CPU):
             ro = rollout.rollout(policy, bench_prompts(model_vocab(model)), PROMPT_TOKENS, NEW_TOKENS, CPU)
@@ -436,11 +411,12 @@ def summarise(entry: dict[str, Any]) -> dict[str, float]:
         row[f"ours/floor {clock}"] = ratio(t["ours"][clock], t["floor"][clock])
         row[f"ours/naive {clock}"] = ratio(t["ours"][clock], t["naive"][clock])
         row[f"bf16/floor {clock}"] = ratio(t["ours-bf16"][clock], t["floor"][clock])
-        row[f"bf16w/floor {clock}"] = ratio(t["ours-bf16w"][clock], t["floor"][clock])
+        row[f"ed: ours/floor {clock}"] = ratio(t["ours-ed"][clock], t["floor-ed"][clock])
+        row[f"ed: ours/naive {clock}"] = ratio(t["ours-ed"][clock], t["naive-ed"][clock])
     row["est/meas step"] = ratio(e["ours"]["seconds_per_step"], t["ours"]["step"])
     rss = {v: m[v]["peak_rss_mb"] if v in m else float("nan") for v in VARIANTS}
     row["rss ours/naive"] = ratio(rss["ours"], rss["naive"])
-    row["rss bf16w/naive"] = ratio(rss["ours-bf16w"], rss["naive"])
+    row["rss bf16/naive"] = ratio(rss["ours-bf16"], rss["naive"])
     row["est/meas rss"] = ratio(e["ours"]["peak_mb"], rss["ours"])
     row["est/meas rss naive"] = ratio(e["naive"]["peak_mb"], rss["naive"])
     return row
@@ -456,12 +432,13 @@ def _table(title: str, rows: dict[str, dict[str, float]], cols: list[str], fmt: 
 def print_tables(results: dict[str, Any]) -> None:
     summary = {name: entry["summary"] for name, entry in results["shapes"].items()}
     _table("ratios, wall time (targets: ours/floor <= 1.10, ours/naive <= 0.85, fastest/floor <= 0.65)",
-           summary, ["ours/floor step", "ours/naive step", "bf16/floor step", "bf16w/floor step"])
+           summary, ["ours/floor step", "ours/naive step", "bf16/floor step", "ed: ours/floor step",
+                     "ed: ours/naive step"])
     _table("ratios, process CPU time (less sensitive to other work on the machine)", summary,
-           ["ours/floor cpu", "ours/naive cpu", "bf16/floor cpu", "bf16w/floor cpu"])
+           ["ours/floor cpu", "ours/naive cpu", "bf16/floor cpu", "ed: ours/floor cpu", "ed: ours/naive cpu"])
     _table("peak RSS ratios (target on base: <= 0.60) and estimate / measured (target 0.70-1.30)", summary,
-           ["rss ours/naive", "rss bf16w/naive", "est/meas rss", "est/meas rss naive", "est/meas step"])
-    print("\nseconds per step (one step after a one-epoch warm-up; other = step minus the named parts), "
+           ["rss ours/naive", "rss bf16/naive", "est/meas rss", "est/meas rss naive", "est/meas step"])
+    print("\nseconds per step (one step after a warm-up; other = step minus the named parts), "
           "CPU seconds, peak RSS (MB, own subprocess)")
     columns = (*PARTS, "step", "cpu")
     print(f"{'shape':<7}{'variant':<11}" + "".join(f"{p:>10}" for p in columns) + f"{'peak MB':>9}")
@@ -505,7 +482,7 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--shapes", default="tiny,small,base", help="comma-separated, from: " + ", ".join(SHAPES))
     ap.add_argument("--out", default="bench-results/bench.json", help="where the JSON results go")
-    ap.add_argument("--memory", default="ours,naive,ours-bf16w",
+    ap.add_argument("--memory", default="ours,naive,ours-bf16",
                     help="variants whose peak RSS is measured, each in its own subprocess ('' for none; all: "
                     + ",".join(VARIANTS) + ")")
     ap.add_argument("--memory-epochs", type=int, default=EPOCHS,

@@ -49,10 +49,13 @@ def test_adamw_state_and_gradient_bytes():
 
 def test_lora_count_t5_small_on_meta_device(t5_small_config: Path):
     # Hu et al. 2021, worked example in REFERENCES.md: 36 matrices of 512x512, r=8 -> 36 * 8 * 1024 = 294,912.
-    cfg = _experiment(t5_small_config, lora={"rank": 8, "targets": ["q", "v"]})
+    cfg = _experiment(t5_small_config, lora={"rank": 8, "targets": ["q", "v"], "scope": "encoder-decoder"})
     model = resources.meta_model(cfg)
     assert all(p.device.type == "meta" for p in model.parameters())
     assert resources.lora_param_count(model, ["q", "v"], 8) == 294_912
+    # the decoder alone: 6 self- and 6 cross-attention blocks -> 24 * 8 * 1024 = 196,608
+    assert resources.lora_param_count(model, ["q", "v"], 8, "decoder") == 196_608
+    assert resources.estimate(_experiment(t5_small_config, lora={"rank": 8})).lora_params == 196_608
     est = resources.estimate(cfg)  # "auto" resolves to q, v for T5 as well
     assert est.lora_params == 294_912
     assert est.trainable_params == 294_912 + 512 + 1  # plus the value head's weight and bias
@@ -88,16 +91,33 @@ def test_estimate_memory_adds_up_and_copy_mode_doubles_weights(t5_small_config: 
     assert shared.seconds_per_step > 0 and shared.warning is None
 
 
-def test_estimate_counts_match_the_loaded_policy(tiny_models: dict[str, Path]):
+@pytest.mark.parametrize("scope", ["decoder", "encoder-decoder"])
+def test_estimate_counts_match_the_loaded_policy(tiny_models: dict[str, Path], scope: str):
     from alignrun.models import build_policy
 
-    cfg = _experiment(tiny_models["t5"], lora={"rank": 4, "targets": "all-linear"})
+    cfg = _experiment(tiny_models["t5"], lora={"rank": 4, "targets": "all-linear", "scope": scope},
+                      base={"model": str(tiny_models["t5"]), "precision": "bf16"})
     est = resources.estimate(cfg)
     policy = build_policy(cfg.base, cfg.lora, cfg.reference, torch.device("cpu"))
     # peft's own count of what it adapted, and the parameters of the real loaded model
     assert est.lora_params == policy.trainable_params
     assert est.total_params == policy.total_params
     assert est.value_head_params == sum(p.numel() for p in policy.net.value_head.parameters())
+    # the bytes the loaded policy really holds (bf16 frozen linear weights), value head included
+    held = sum(p.numel() * p.element_size() for p in policy.net.parameters())
+    assert est.weights_mb * 1024 * 1024 == held
+
+
+def test_bf16_weight_bytes_by_hand(t5_small_config: Path):
+    # T5-small (Raffel et al. 2020): 6 encoder layers of 4 x 512x512 attention + 512x2048 + 2048x512 feed-forward,
+    # 6 decoder layers with 8 x 512x512; the output projection is tied to the 32128 x 512 embedding, which stays
+    # fp32 like the norms. 2 bytes per bf16 weight, 4 per fp32 weight (common practice).
+    model = resources.meta_model(_experiment(t5_small_config))
+    linear = 6 * (4 * 512 * 512 + 2 * 512 * 2048) + 6 * (8 * 512 * 512 + 2 * 512 * 2048)
+    assert linear == 44_040_192
+    total = sum(p.numel() for p in {id(p): p for p in model.parameters()}.values())
+    assert resources.base_weight_bytes(model, "fp32") == 4 * total
+    assert resources.base_weight_bytes(model, "bf16") == 2 * linear + 4 * (total - linear)
 
 
 def _available(mb: int) -> SimpleNamespace:

@@ -59,7 +59,7 @@ def test_lora_trainable_count_matches_hu_et_al_worked_example() -> None:
     with torch.device("meta"):
         model = T5ForConditionalGeneration(cfg)
     assert lora_targets(model, "auto") == ["q", "v"]
-    lm = wrap_lora(model, LoraSection(rank=8))
+    lm = wrap_lora(model, LoraSection(rank=8, scope="encoder-decoder"))
     trainable = sum(p.numel() for p in lm.parameters() if p.requires_grad)
     assert trainable == 36 * 8 * (512 + 512) == 294_912
 
@@ -117,7 +117,7 @@ def test_step_prompts_cover_the_data_deterministically() -> None:
 @pytest.mark.slow
 @pytest.mark.parametrize("arch", ["t5", "bart"])
 def test_end_to_end_run_writes_every_file_and_the_adapter_reloads(tmp_path: Path, tiny_models, arch) -> None:
-    token_reward.configure(word="order")
+    token_reward.configure("order")
     cfg = load_config(_write_config(tmp_path, tiny_models[arch], PROMPTS))
     out = tmp_path / "run"
     report = run_experiment(cfg, out, quiet=True, force=True)
@@ -153,17 +153,19 @@ def test_end_to_end_run_writes_every_file_and_the_adapter_reloads(tmp_path: Path
 
 
 @pytest.mark.slow
-def test_reward_for_a_chosen_token_raises_its_frequency(tmp_path: Path, tiny_models) -> None:
-    """The loop really optimises: rewarding one token's text makes the policy emit that token more often."""
+@pytest.mark.parametrize("scope", ["decoder", "encoder-decoder"])
+def test_reward_for_chosen_tokens_raises_their_frequency(tmp_path: Path, tiny_models, scope: str) -> None:
+    """The loop really optimises: rewarding some tokens' text makes the policy emit those tokens more often."""
     torch.manual_seed(0)
     probe = build_policy(BaseSection(model=str(tiny_models["t5"])), LoraSection(rank=4), ReferenceSection(), CPU)
     ro = rollout(probe, PROMPTS * 4, 32, 8, CPU)
     counts = np.bincount(ro.response_ids[ro.response_mask.bool()].numpy(), minlength=len(probe.tokenizer))
-    wordlike = [len(probe.tokenizer.decode([i]).strip()) >= 3 for i in range(len(counts))]
-    counts[~np.array(wordlike)] = 0
-    token = int(counts.argmax())  # the word-like token the random base already emits most often
-    token_reward.configure(word=probe.tokenizer.decode([token]).strip())
-    cfg = load_config(_write_config(tmp_path, tiny_models["t5"], PROMPTS,
+    words = [probe.tokenizer.decode([i]).strip() for i in range(len(counts))]
+    wordlike = np.array([w.isalpha() and len(w) >= 3 for w in words])
+    counts[~wordlike] = 0
+    tokens = [int(i) for i in np.argsort(-counts, kind="stable")[:10]]  # the word tokens the base emits most
+    token_reward.configure(*(words[i] for i in tokens))
+    cfg = load_config(_write_config(tmp_path, tiny_models["t5"], PROMPTS, lora={"scope": scope},
                                     ppo={"steps": 25, "prompts_per_step": 16, "minibatch": 8, "learning_rate": 3e-2},
                                     evaluation={"samples_per_prompt": 8, "max_prompts": 10}))
     run_experiment(cfg, tmp_path / "run", quiet=True, force=True)
@@ -171,7 +173,8 @@ def test_reward_for_a_chosen_token_raises_its_frequency(tmp_path: Path, tiny_mod
     def frequency(name: str) -> float:
         rows = [json.loads(ln) for ln in (tmp_path / "run" / name).read_text().splitlines()]
         ids = [i for r in rows if not r["greedy"] for i in r["token_ids"]]
-        return ids.count(token) / len(ids)
+        return sum(ids.count(t) for t in tokens) / len(ids)
 
     before, after = frequency("eval_before.jsonl"), frequency("eval_after.jsonl")
-    assert after > 2 * before + 0.005, (token, before, after)
+    print(f"{scope}: frequency of the rewarded tokens {before:.4f} -> {after:.4f}")
+    assert after > 2 * before + 0.005, (tokens, before, after)

@@ -1,15 +1,16 @@
-"""A `module:function` reward backend for tests: harm falls as a chosen word occurs more often in a reply."""
+"""A `module:function` reward backend for tests: harm falls as chosen words occur more often in a reply."""
 
 from __future__ import annotations
 
 import numpy as np
 
-_WORD = {"word": "order"}
+_WORDS = {"words": ("order",)}
 
 
-def configure(word: str) -> None:
-    _WORD["word"] = word.lower()
+def configure(*words: str) -> None:
+    _WORDS["words"] = tuple(w.lower() for w in words)
 
 
 def harm(texts: list[str]) -> np.ndarray:
-    return np.array([1.0 - min(1.0, text.lower().count(_WORD["word"]) / 3) for text in texts])
+    hits = [sum(text.lower().split().count(w) for w in _WORDS["words"]) for text in texts]
+    return np.array([1.0 - min(1.0, h / 3) for h in hits])

@@ -1,0 +1,135 @@
+"""Speed and memory switches that must not change results: decoder-only adapters with the encoder output
+reused, and bf16 storage of the frozen weights under bf16 autocast."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+import torch
+from transformers import T5Config, T5ForConditionalGeneration
+
+from alignrun.config import BaseSection, LoraSection, ReferenceSection
+from alignrun.errors import UserError
+from alignrun.models import autocast, build_policy, wrap_lora
+from alignrun.rollout import encode_prompts, frozen_encoding, reference_logprobs, rollout, sample
+from alignrun.trainer import run_experiment
+from tests.test_trainer import PROMPTS, _write_config
+
+CPU = torch.device("cpu")
+
+
+def _policy(model: Path, scope: str = "encoder-decoder", precision: str = "fp32", mode: str = "adapters-off"):
+    torch.manual_seed(0)
+    return build_policy(BaseSection(model=str(model), precision=precision), LoraSection(rank=4, scope=scope),
+                        ReferenceSection(mode=mode), CPU)
+
+
+def _perturb_adapters(policy) -> None:
+    """LoRA's B starts at zero (Hu et al. 2021); give it values so the adapters change the outputs."""
+    with torch.no_grad():
+        for name, p in policy.lm.named_parameters():
+            if "lora_B" in name:
+                p.normal_(std=0.05)
+
+
+def test_decoder_scope_adapts_only_the_decoder_worked_example() -> None:
+    # Hu et al. 2021: r * (d_in + d_out) per adapted matrix. T5-small shape, r = 8 on q and v: the decoder has 6
+    # self-attention and 6 cross-attention blocks -> 24 * 8 * 1024 = 196,608 of the 294,912 for both stacks.
+    cfg = T5Config(d_model=512, d_kv=64, num_heads=8, d_ff=2048, num_layers=6, num_decoder_layers=6, vocab_size=32128)
+    with torch.device("meta"):
+        lm = wrap_lora(T5ForConditionalGeneration(cfg), LoraSection(rank=8, scope="decoder"))
+    trainable = {n: p.numel() for n, p in lm.named_parameters() if p.requires_grad}
+    assert sum(trainable.values()) == 24 * 8 * (512 + 512) == 196_608
+    assert all(".decoder." in n for n in trainable)
+
+
+@pytest.mark.parametrize("arch", ["t5", "bart"])
+def test_reused_encoder_output_gives_the_same_forward_and_gradients(tiny_models, arch) -> None:
+    policy = _policy(tiny_models[arch], scope="decoder")
+    assert policy.encoder_frozen
+    assert all("decoder" in n for n, p in policy.lm.named_parameters() if p.requires_grad and "lora" in n)
+    _perturb_adapters(policy)
+    ids, mask = encode_prompts(policy.tokenizer, PROMPTS[:6], 32, CPU)
+    hidden = frozen_encoding(policy, ids, mask)
+    assert hidden is not None and not hidden.requires_grad
+    decoder_input = torch.randint(3, 50, (6, 9))
+    decoder_input[:, 0] = policy.lm.config.decoder_start_token_id
+
+    def forward_and_grads(h):
+        policy.net.zero_grad(set_to_none=True)
+        logits, values = policy.net(ids, mask, decoder_input, h)
+        (logits.logsumexp(-1).mean() + values.square().mean()).backward()
+        grads = {n: p.grad.clone() for n, p in policy.net.named_parameters() if p.requires_grad}
+        return logits.detach(), values.detach(), grads
+
+    fresh, reused = forward_and_grads(None), forward_and_grads(hidden)
+    assert torch.allclose(fresh[0], reused[0], atol=1e-5) and torch.allclose(fresh[1], reused[1], atol=1e-5)
+    assert fresh[2].keys() == reused[2].keys()
+    assert all(torch.allclose(fresh[2][n], reused[2][n], atol=1e-5) for n in fresh[2])
+    # the reference (adapters off) sees the same encoder: no adapter sits there
+    response = decoder_input.roll(-1, dims=1)
+    assert torch.allclose(reference_logprobs(policy, ids, mask, decoder_input, response),
+                          reference_logprobs(policy, ids, mask, decoder_input, response, hidden), atol=1e-5)
+    # sampling with the kept encoder output draws the same tokens with the same log-probs
+    torch.manual_seed(3)
+    seq_a, logp_a, _ = sample(policy, ids, mask, 8)
+    torch.manual_seed(3)
+    seq_b, logp_b, _ = sample(policy, ids, mask, 8, encoder_hidden=hidden)
+    assert torch.equal(seq_a, seq_b) and torch.allclose(logp_a, logp_b, atol=1e-5)
+
+
+def test_rollout_keeps_the_encoder_output_only_when_the_encoder_is_frozen(tiny_models) -> None:
+    both, dec = _policy(tiny_models["t5"]), _policy(tiny_models["t5"], scope="decoder")
+    assert not both.encoder_frozen and rollout(both, PROMPTS[:4], 32, 6, CPU).encoder_hidden is None
+    ro = rollout(dec, PROMPTS[:4], 32, 6, CPU)
+    assert ro.encoder_hidden is not None and ro.encoder_hidden.shape[:2] == ro.prompt_ids.shape
+    part = ro.select(torch.tensor([2, 0]))
+    assert part.encoder_hidden is not None and torch.equal(part.encoder_hidden, ro.encoder_hidden[[2, 0]])
+
+
+def test_decoder_scope_refuses_targets_outside_the_decoder(tiny_models) -> None:
+    # the output projection is a linear layer but never a decoder-stack one: nothing would be adapted
+    with pytest.raises(UserError, match=r"lora.scope = 'decoder': none of the layers lm_head .*encoder-decoder"):
+        build_policy(BaseSection(model=str(tiny_models["t5"])), LoraSection(targets=["lm_head"], scope="decoder"),
+                     ReferenceSection(), CPU)
+
+
+@pytest.mark.parametrize("mode", ["adapters-off", "copy"])
+def test_bf16_stores_frozen_linear_weights_in_bf16_with_the_autocast_numbers(tiny_models, mode) -> None:
+    plain = _policy(tiny_models["t5"], mode=mode)  # fp32 weights; run under bf16 autocast below
+    stored = _policy(tiny_models["t5"], precision="bf16", mode=mode)
+    for policy in (plain, stored):
+        _perturb_adapters(policy)
+    stored.lm.load_state_dict({k: v for k, v in plain.lm.state_dict().items() if "lora" in k}, strict=False)
+    frozen = {n: p.dtype for n, p in stored.lm.named_parameters() if not p.requires_grad}
+    trainable = {n: p.dtype for n, p in stored.net.named_parameters() if p.requires_grad}
+    assert any(d == torch.bfloat16 for d in frozen.values())
+    assert set(trainable.values()) == {torch.float32}  # adapters and value head stay fp32 for AdamW
+    assert stored.lm.get_input_embeddings().weight.dtype == torch.float32
+    if mode == "copy":
+        assert {p.dtype for p in stored.reference_copy.parameters()} >= {torch.bfloat16}
+    ids, mask = encode_prompts(plain.tokenizer, PROMPTS[:4], 32, CPU)
+    decoder_input = torch.randint(3, 50, (4, 7))
+    decoder_input[:, 0] = plain.lm.config.decoder_start_token_id
+    with torch.no_grad(), autocast("bf16", CPU):
+        a, b = plain.net(ids, mask, decoder_input), stored.net(ids, mask, decoder_input)
+        response = decoder_input.roll(-1, dims=1)
+        ref_a = reference_logprobs(plain, ids, mask, decoder_input, response)
+        ref_b = reference_logprobs(stored, ids, mask, decoder_input, response)
+    # autocast rounds each fp32 weight to bf16 (round to nearest even) exactly as the stored copy was rounded
+    assert torch.allclose(a[0].float(), b[0].float(), atol=1e-3) and torch.allclose(a[1], b[1], atol=1e-3)
+    assert torch.allclose(ref_a, ref_b, atol=1e-3)
+
+
+def test_a_run_with_bf16_and_decoder_only_adapters_finishes(tmp_path: Path, tiny_models) -> None:
+    config = _write_config(tmp_path, tiny_models["t5"], PROMPTS, base={"precision": "bf16"},
+                           lora={"scope": "decoder"})
+    from alignrun.config import load_config
+
+    report = run_experiment(load_config(config), tmp_path / "run", quiet=True, force=True)  # token reward: no probes
+    assert report["run"]["status"] == "finished"
+    assert json.loads((tmp_path / "run" / "adapter" / "adapter_config.json").read_text())["target_modules"]
+    rows = [json.loads(line) for line in (tmp_path / "run" / "metrics.jsonl").read_text().splitlines()]
+    assert len(rows) == 2 and all(torch.isfinite(torch.tensor(r["policy_loss"])) for r in rows)
