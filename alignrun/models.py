@@ -3,8 +3,12 @@
 from __future__ import annotations
 
 import copy
+import ctypes
+import functools
+import mmap
 import os
 import re
+import sys
 from collections.abc import Iterator
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass
@@ -223,10 +227,34 @@ def store_frozen_linear_in_bf16(model: nn.Module) -> None:
     tied = model.get_input_embeddings().weight  # type: ignore[operator]
     for module in model.modules():
         if isinstance(module, nn.Linear) and not module.weight.requires_grad and module.weight is not tied:
-            module.weight = nn.Parameter(module.weight.detach().to(torch.bfloat16), requires_grad=False)
-    for param in model.parameters():  # copy the rest out of the memory-mapped checkpoint so its pages are freed
-        if not param.requires_grad and param.dtype == torch.float32:
-            param.data = param.data.clone()
+            fp32 = module.weight
+            module.weight = nn.Parameter(fp32.detach().to(torch.bfloat16), requires_grad=False)
+            _page_out(fp32)
+
+
+def _page_out(tensor: torch.Tensor) -> None:
+    """Hint Linux to drop the resident pages of a tensor no longer used (MADV_PAGEOUT; its data stays valid).
+
+    Checkpoint weights are memory-mapped and stay mapped until every tensor of the file is gone, so converting
+    them one by one would otherwise hold all fp32 pages and all bf16 copies at once (measured: a 223M model
+    peaked at 1.84 GB instead of 0.88 GB). Elsewhere, or on kernels before 5.4, this does nothing."""
+    if not sys.platform.startswith("linux"):
+        return
+    page = mmap.PAGESIZE
+    start = tensor.data_ptr()
+    first, last = -(-start // page) * page, (start + tensor.numel() * tensor.element_size()) // page * page
+    if last > first:  # whole pages inside the tensor only: its neighbours keep theirs
+        _libc().madvise(first, last - first, _MADV_PAGEOUT)
+
+
+_MADV_PAGEOUT = 21  # linux/mman.h, since Linux 5.4
+
+
+@functools.cache
+def _libc() -> ctypes.CDLL:
+    libc = ctypes.CDLL(None, use_errno=True)
+    libc.madvise.argtypes = [ctypes.c_void_p, ctypes.c_size_t, ctypes.c_int]
+    return libc
 
 
 def build_policy(base: BaseSection, lora: LoraSection, reference: ReferenceSection,

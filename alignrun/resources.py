@@ -35,6 +35,12 @@ PROCESS_OVERHEAD_MB = 560.0
 # scripts/bench, where it dominates, was 3.6 and 5.1 ms in two runs on the development machine (2 cores
 # shared with other work); the small and base shapes check the value.
 LAYER_PASS_SECONDS = 0.004
+# Fixed costs beyond the layers, from the same tiny shape (means of four bench runs, 2 cores, idle machine):
+# per sampled token (sampling over the vocabulary, logits processors, cache bookkeeping), measured generate
+# time minus its layer passes, 6 ms; per update minibatch (losses, backward launch, clipping, optimizer step),
+# measured update time minus its layer passes, 35 ms.
+TOKEN_SECONDS = 0.006
+MINIBATCH_SECONDS = 0.035
 LOGITS_COPIES_UPDATE = 4  # [mb, T, V] fp32 alive in an update minibatch: logits, log-softmax, 2 gradients
 LOGITS_COPIES_ROLLOUT = 2  # [B, T, V] fp32: the per-step logits from generation and their stacked copy
 
@@ -177,6 +183,8 @@ class Work:
     batched_flops: float  # whole-batch matmuls: prompt encoding, reference forward, updates
     decode_flops: float  # one token per row per call: the decoder while sampling
     layer_passes: int  # forward passes through one layer (a backward counts as two)
+    sampled_tokens: int  # decoding steps of the batch
+    minibatches: int  # update iterations: epochs x minibatches
 
 
 def step_work(d: Dims, cfg: Experiment, trainable: int) -> Work:
@@ -197,7 +205,7 @@ def step_work(d: Dims, cfg: Experiment, trainable: int) -> Work:
     layers = d.enc_layers * trained_encoder + d.dec_layers + 1  # + the output projection and loss
     passes = (d.enc_layers + t * (d.dec_layers + 1)) + layers + epochs * minibatches * 3 * layers
     return Work(batched_flops=encode + forward + epochs * (forward + backward), decode_flops=decode,
-                layer_passes=passes)
+                layer_passes=passes, sampled_tokens=t, minibatches=epochs * minibatches)
 
 
 def activation_bytes(d: Dims, cfg: Experiment) -> int:
@@ -238,7 +246,8 @@ def estimate(cfg: Experiment) -> Estimate:
     throughput = {"batched": matmul_gflops(mb * p, d.d_model, d.d_ff, precision),
                   "decode": matmul_gflops(b, d.d_model, d.vocab, precision)}
     seconds = (work.batched_flops / (throughput["batched"] * 1e9)
-               + work.decode_flops / (throughput["decode"] * 1e9) + work.layer_passes * LAYER_PASS_SECONDS)
+               + work.decode_flops / (throughput["decode"] * 1e9) + work.layer_passes * LAYER_PASS_SECONDS
+               + work.sampled_tokens * TOKEN_SECONDS + work.minibatches * MINIBATCH_SECONDS)
     available = psutil.virtual_memory().available / MB
     warning = None
     if peak_mb > available:

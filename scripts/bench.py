@@ -1,10 +1,11 @@
 """Benchmark one alignrun step against a bare floor and a naive loop on three random T5-shaped models.
 
-    scripts/bench [--shapes tiny,small,base] [--out bench-results/bench.json] [--memory VARIANTS]
+    scripts/bench [--shapes tiny,small,base] [--variants ours,floor,naive,ours-bf16|all] [--rounds 2]
+                  [--memory VARIANTS] [--out bench-results/bench.json]
 
 For each shape a random model is saved as a Hugging Face folder (WordLevel tokenizer over invented words)
 and loaded by the real `build_policy`. In one process, after a warm-up step of every variant (one minibatch,
-one epoch), it times one step of each:
+one epoch), it times one step of each, in turn, twice (--rounds), keeping each variant's faster step:
 
     ours        alignrun.trainer.train_step with the defaults (fp32, LoRA on the decoder's query/value
                 projections): the frozen encoder runs once and its output serves sampling, the reference
@@ -16,10 +17,12 @@ one epoch), it times one step of each:
                 values, then the same reward, advantages and PPO update (full forwards, no reuse)
     ours-bf16   ours with base.precision = "bf16": autocast, frozen linear weights stored in bf16
     ours-ed, floor-ed, naive-ed
-                the same three with lora.scope = "encoder-decoder" (adapters in both stacks: nothing to reuse)
+                the same three with lora.scope = "encoder-decoder" (adapters in both stacks: nothing to
+                reuse); timed with --variants all
 
 Wall time and process CPU time are both recorded: CPU time is less disturbed by other work on the machine.
-Peak RSS is per process, so each variant's memory is measured in its own subprocess (one step, VmHWM):
+Peak RSS is per process, so each variant's memory is measured in its own subprocess (one step, VmHWM; the
+subprocesses run side by side, which changes their speed, not their peaks):
 by default ours, naive and ours-bf16 (the floor tracks ours within ~5%).
 All variants generate exactly 32 tokens: the saved generation config sets min_new_tokens, and every
 variant calls the same generate.
@@ -35,6 +38,7 @@ import os
 import platform
 import random
 import resource
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -326,18 +330,27 @@ def run_step(s: Setup, step: int) -> dict[str, float]:
 # ---------------------------------------------------------------------------------------- measurements
 
 
-def time_shape(model: Path) -> dict[str, dict[str, float]]:
+def time_shape(model: Path, variants: list[str], rounds: int) -> dict[str, dict[str, float]]:
     """One process: each floor shares its ours variant's policy; the other variants load their own.
-    Every variant gets a warm-up step (one minibatch, one epoch), then one full step each is timed."""
+    Every variant gets a warm-up step (one minibatch, one epoch); then `rounds` rounds time one full step of
+    each variant in turn (in reverse order every other round), and each variant keeps its fastest round (the
+    least disturbed by other work)."""
     accelerator = Accelerator(cpu=True)
     setups: dict[str, Setup] = {}
-    for v in VARIANTS:
-        shared = setups[PAIRED[v]].policy if v in PAIRED else None
+    for v in variants:
+        shared = setups[PAIRED[v]].policy if v in PAIRED and PAIRED[v] in setups else None
         setups[v] = make_setup(v, model, accelerator, policy=shared)
     for setup in setups.values():
         run_step(setup.warm_up(), 0)
-    torch.manual_seed(0)
-    return {name: run_step(setup, 1) for name, setup in setups.items()}
+    best: dict[str, dict[str, float]] = {}
+    for step in range(1, rounds + 1):
+        torch.manual_seed(step)
+        order = list(setups.items())  # every other round backwards: no variant always runs first or last
+        for name, setup in order if step % 2 else order[::-1]:
+            row = run_step(setup, step)
+            if name not in best or row["step"] < best[name]["step"]:
+                best[name] = row
+    return best
 
 
 def memory_child(model: Path, variant: str, epochs: int) -> dict[str, float]:
@@ -347,13 +360,23 @@ def memory_child(model: Path, variant: str, epochs: int) -> dict[str, float]:
     return {"peak_rss_mb": trainer.peak_rss_mb(), "step_s": row["step"]}
 
 
-def measure_memory(model: Path, variant: str, epochs: int) -> dict[str, float]:
-    cmd = [sys.executable, __file__, "--child", variant, "--model", str(model), "--epochs", str(epochs),
-           "--threads", str(torch.get_num_threads())]
-    done = subprocess.run(cmd, capture_output=True, text=True, check=False)
-    if done.returncode != 0:
-        raise RuntimeError(f"memory run {variant} on {model} failed:\n{done.stderr[-3000:]}")
-    return json.loads(done.stdout.strip().splitlines()[-1])
+def measure_memory(model: Path, variants: list[str], epochs: int) -> dict[str, dict[str, float]]:
+    """Each variant's peak RSS, in subprocesses run side by side (each reads only its own peak). Each loads its
+    own copy of the model folder: pages of a file mapped by several processes cannot be paged out, which a
+    lone run relies on (models.store_frozen_linear_in_bf16)."""
+    copies = {v: Path(shutil.copytree(model, model.with_name(f"{model.name}-{v}"), dirs_exist_ok=True))
+              for v in variants}
+    children = {v: subprocess.Popen([sys.executable, __file__, "--child", v, "--model", str(copies[v]),
+                                     "--epochs", str(epochs), "--threads", str(torch.get_num_threads())],
+                                    stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                for v in variants}
+    out: dict[str, dict[str, float]] = {}
+    for variant, child in children.items():
+        stdout, stderr = child.communicate()
+        if child.returncode != 0:
+            raise RuntimeError(f"memory run {variant} on {model} failed:\n{stderr[-3000:]}")
+        out[variant] = json.loads(stdout.strip().splitlines()[-1])
+    return out
 
 
 # Tolerances fixed before measuring: a per-token log-prob change of 0.05 nats moves the PPO ratio by ~5%, a
@@ -405,7 +428,8 @@ def ratio(a: float, b: float) -> float:
 
 
 def summarise(entry: dict[str, Any]) -> dict[str, float]:
-    t, m, e = entry["time"], entry.get("memory", {}), entry["estimate"]
+    m, e = entry.get("memory", {}), entry["estimate"]
+    t = {v: entry["time"].get(v, {"step": float("nan"), "cpu": float("nan")}) for v in VARIANTS}
     row: dict[str, float] = {}
     for clock in ("step", "cpu"):
         row[f"ours/floor {clock}"] = ratio(t["ours"][clock], t["floor"][clock])
@@ -438,13 +462,12 @@ def print_tables(results: dict[str, Any]) -> None:
            ["ours/floor cpu", "ours/naive cpu", "bf16/floor cpu", "ed: ours/floor cpu", "ed: ours/naive cpu"])
     _table("peak RSS ratios (target on base: <= 0.60) and estimate / measured (target 0.70-1.30)", summary,
            ["rss ours/naive", "rss bf16/naive", "est/meas rss", "est/meas rss naive", "est/meas step"])
-    print("\nseconds per step (one step after a warm-up; other = step minus the named parts), "
+    print("\nseconds per step (fastest round after a warm-up; other = step minus the named parts), "
           "CPU seconds, peak RSS (MB, own subprocess)")
     columns = (*PARTS, "step", "cpu")
     print(f"{'shape':<7}{'variant':<11}" + "".join(f"{p:>10}" for p in columns) + f"{'peak MB':>9}")
     for name, entry in results["shapes"].items():
-        for variant in VARIANTS:
-            t = entry["time"][variant]
+        for variant, t in entry["time"].items():
             rss = entry.get("memory", {}).get(variant, {}).get("peak_rss_mb", float("nan"))
             print(f"{name:<7}{variant:<11}" + "".join(f"{t[p]:>10.2f}" for p in columns) + f"{rss:>9.0f}")
     print("\nestimate (alignrun.resources.estimate, fp32) vs measured")
@@ -454,7 +477,7 @@ def print_tables(results: dict[str, Any]) -> None:
         e, m = entry["estimate"], entry.get("memory", {})
         rss = {v: m.get(v, {}).get("peak_rss_mb", float("nan")) for v in ("ours", "naive")}
         print(f"{name:<7}{e['ours']['total_params']:>12,}{e['ours']['trainable_params']:>11,}"
-              f"{e['ours']['seconds_per_step']:>8.2f}{entry['time']['ours']['step']:>8.2f}"
+              f"{e['ours']['seconds_per_step']:>8.2f}{entry['time'].get('ours', {}).get('step', float('nan')):>8.2f}"
               f"{e['ours']['peak_mb']:>8.0f}{rss['ours']:>9.0f}"
               f"{e['naive']['peak_mb']:>10.0f}{rss['naive']:>9.0f}")
     check = results.get("precision_check")
@@ -482,6 +505,10 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--shapes", default="tiny,small,base", help="comma-separated, from: " + ", ".join(SHAPES))
     ap.add_argument("--out", default="bench-results/bench.json", help="where the JSON results go")
+    ap.add_argument("--variants", default="ours,floor,naive,ours-bf16",
+                    help="variants to time ('all': also the -ed ones, about 4 more minutes); from: "
+                    + ",".join(VARIANTS))
+    ap.add_argument("--rounds", type=int, default=2, help="timed steps per variant; the fastest counts")
     ap.add_argument("--memory", default="ours,naive,ours-bf16",
                     help="variants whose peak RSS is measured, each in its own subprocess ('' for none; all: "
                     + ",".join(VARIANTS) + ")")
@@ -503,14 +530,16 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     shapes = [s.strip() for s in args.shapes.split(",") if s.strip()]
     memory = [v.strip() for v in args.memory.split(",") if v.strip()]
-    for given, allowed, what in ((shapes, SHAPES, "--shapes"), (memory, VARIANTS, "--memory")):
+    variants = list(VARIANTS) if args.variants == "all" else [v.strip() for v in args.variants.split(",")]
+    for given, allowed, what in ((shapes, SHAPES, "--shapes"), (memory, VARIANTS, "--memory"),
+                                 (variants, VARIANTS, "--variants")):
         if any(g not in allowed for g in given):
             ap.error(f"{what} {','.join(given)}: choose from {', '.join(allowed)}")
     started = time.perf_counter()
     results: dict[str, Any] = {
         "setup": {"prompts": PROMPTS, "prompt_tokens": PROMPT_TOKENS, "new_tokens": NEW_TOKENS,
                   "minibatch": MINIBATCH, "epochs": EPOCHS, "lora_rank": RANK, "lora_targets": "q,v",
-                  "memory_epochs": args.memory_epochs, "threads": torch.get_num_threads(),
+                  "memory_epochs": args.memory_epochs, "rounds": args.rounds, "threads": torch.get_num_threads(),
                   "omp_wait_policy": os.environ.get("OMP_WAIT_POLICY", "(unset)"), "torch": torch.__version__,
                   "platform": platform.platform(), "load_average_start": os.getloadavg()},
         "fast_settings": resources.fast_settings(), "shapes": {},
@@ -528,20 +557,20 @@ def main(argv: list[str] | None = None) -> int:
             if name == shapes[0]:  # the smallest shape asked for: tiny by default
                 log(f"{name}: precision check")
                 results["precision_check"], results["precision_check_shape"] = precision_check(model), name
-            log(f"{name}: timing {', '.join(VARIANTS)}")
-            entry["time"] = time_shape(model)
+            log(f"{name}: timing {', '.join(variants)}, {args.rounds} round(s)")
+            entry["time"] = time_shape(model, variants, args.rounds)
             gc.collect()
             if memory:
-                log(f"{name}: peak RSS of {', '.join(memory)}, one subprocess each")
-                entry["memory"] = {v: measure_memory(model, v, args.memory_epochs) for v in memory}
+                log(f"{name}: peak RSS of {', '.join(memory)}, one subprocess each, side by side")
+                entry["memory"] = measure_memory(model, memory, args.memory_epochs)
             entry["summary"] = summarise(entry)
             results["shapes"][name] = entry
     results["setup"]["load_average_end"] = os.getloadavg()
     results["setup"]["wall_s"] = time.perf_counter() - started
-    print_tables(results)
     out = Path(args.out)
     out.parent.mkdir(parents=True, exist_ok=True)
-    out.write_text(json.dumps(_no_nan(results), indent=2, allow_nan=False) + "\n")
+    out.write_text(json.dumps(_no_nan(results), indent=2, allow_nan=False) + "\n")  # before printing: kept
+    print_tables(results)
     print(f"\nwrote {out} ({results['setup']['wall_s']:.0f} s)")
     return 0
 

@@ -133,3 +133,26 @@ def test_a_run_with_bf16_and_decoder_only_adapters_finishes(tmp_path: Path, tiny
     assert json.loads((tmp_path / "run" / "adapter" / "adapter_config.json").read_text())["target_modules"]
     rows = [json.loads(line) for line in (tmp_path / "run" / "metrics.jsonl").read_text().splitlines()]
     assert len(rows) == 2 and all(torch.isfinite(torch.tensor(r["policy_loss"])) for r in rows)
+
+
+def _rss_file_mb() -> float:
+    status = Path("/proc/self/status").read_text().splitlines()
+    return next(int(line.split()[1]) for line in status if line.startswith("RssFile:")) / 1024
+
+
+@pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="reads Linux's /proc/self/status")
+def test_page_out_drops_a_mapped_tensors_pages_and_keeps_its_data(tmp_path: Path) -> None:
+    from alignrun.models import _page_out
+
+    n = 16 * 1024 * 1024  # 64 MB of fp32, memory-mapped like a checkpoint's weights
+    torch.arange(n, dtype=torch.float32).numpy().tofile(tmp_path / "weights.bin")
+    mapped = torch.from_file(str(tmp_path / "weights.bin"), shared=True, size=n, dtype=torch.float32)
+    expected = float(mapped.sum())  # touches every page
+    before = _rss_file_mb()
+    _page_out(mapped)
+    assert before - _rss_file_mb() > 48  # most of the 64 MB left the resident set (Linux >= 5.4)
+    assert float(mapped.sum()) == expected  # the pages come back from the file on the next read
+    anonymous = torch.randn(1024, 1024)
+    copy = anonymous.clone()
+    _page_out(anonymous)  # anonymous memory: at most swapped out, never lost
+    assert torch.equal(anonymous, copy)
