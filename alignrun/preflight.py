@@ -239,11 +239,13 @@ def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path
           f"reward gap {report.reward_gap:+.3f}")
     print(f"verdict: {report.verdict}")
     print(report.message)
+    params = None
     try:
-        lines = describe(estimate(cfg))
+        est = estimate(cfg)
+        lines, params = describe(est), est.total_params
     except UserError as exc:  # e.g. a base model not available here: the polarity verdict still stands
         lines = [f"resources: not estimated: {exc}"]
-    lines.append(describe_fast_settings(fast_settings(), cfg.base.precision))
+    lines.append(describe_fast_settings(fast_settings(), cfg.base.precision, params))
     print("\n".join(lines))
     if out is not None:
         print(f"wrote {write_preflight(report, out)}")

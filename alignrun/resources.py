@@ -315,11 +315,18 @@ def describe(est: Estimate) -> list[str]:
     return lines
 
 
-def describe_fast_settings(settings: dict[str, bool | str], precision: str) -> str:
-    """One line for `alignrun check`: what the CPU supports and whether the config uses it."""
+# bf16 halved the step of the 61M and 223M shapes of scripts/bench and gained nothing on the 2M one.
+BF16_WORTH_PARAMS = 50_000_000
+
+
+def describe_fast_settings(settings: dict[str, bool | str], precision: str, params: int | None = None) -> str:
+    """One line for `alignrun check`: what the CPU supports and whether the config uses it; bf16 is suggested
+    only for models big enough to gain from it (`params`, when known)."""
     hint = ""
-    if settings["recommended_precision"] != precision:
-        hint = f"; try base.precision = \"{settings['recommended_precision']}\""
+    worth = params is None or params >= BF16_WORTH_PARAMS or settings["recommended_precision"] == "fp32"
+    if settings["recommended_precision"] != precision and worth:
+        why = "faster steps; a run drifts as with another seed" if settings["bf16"] else "no native bf16 here"
+        hint = f"; try base.precision = \"{settings['recommended_precision']}\" ({why})"
     return (f"fast settings: bf16 {'yes' if settings['bf16'] else 'no'} (cpu {settings['cpu_capability']}"
             f"{', amx' if settings['amx'] else ''}), int8 dynamic quantisation "
             f"{'yes' if settings['int8_dynamic'] else 'no'}; base.precision = \"{precision}\"{hint}")

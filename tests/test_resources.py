@@ -151,6 +151,16 @@ def test_fast_settings_are_booleans_and_follow_the_cpu_flags(monkeypatch: pytest
     assert resources.fast_settings()["recommended_precision"] == "fp32"
 
 
+def test_bf16_is_suggested_only_where_it_pays():
+    settings = {"bf16": True, "cpu_capability": "AVX512", "amx": False, "int8_dynamic": True,
+                "recommended_precision": "bf16"}
+    assert "try base.precision = \"bf16\"" in resources.describe_fast_settings(settings, "fp32", 60_000_000)
+    assert "try" not in resources.describe_fast_settings(settings, "fp32", 2_000_000)  # a tiny model gains nothing
+    assert "try" not in resources.describe_fast_settings(settings, "bf16", 60_000_000)
+    without = {**settings, "bf16": False, "recommended_precision": "fp32"}
+    assert "try base.precision = \"fp32\"" in resources.describe_fast_settings(without, "bf16", 2_000_000)
+
+
 def test_check_prints_the_estimate_and_the_fast_settings(tiny_models: dict[str, Path], tmp_path: Path,
                                                          capsys: pytest.CaptureFixture[str]):
     from alignrun.preflight import run_check
