@@ -206,7 +206,7 @@ def _decoder_only(model: nn.Module, targets: str | list[str]) -> str:
         named = targets if isinstance(targets, str) else ", ".join(targets)
         raise UserError(f"lora.scope = 'decoder': none of the layers {named} sits in a 'decoder' module of this "
                         f"{getattr(model.config, 'model_type', '')} model; use lora.scope = 'encoder-decoder'")
-    return rf"(.*\.)?decoder\..*\.({'|'.join(re.escape(n) for n in leaves)})"
+    return rf"{_DECODER.pattern}.*\.({'|'.join(re.escape(n) for n in leaves)})"
 
 
 def wrap_lora(model: nn.Module, lora: LoraSection) -> PeftModel:
