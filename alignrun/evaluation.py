@@ -13,9 +13,9 @@ import torch
 
 from alignrun import metrics
 from alignrun.config import Experiment
-from alignrun.models import Policy
+from alignrun.models import Policy, encoder_outputs
 from alignrun.report import write_jsonl_atomic
-from alignrun.rollout import encode_prompts, frozen_encoding, reference_logprobs, response_mask, sample
+from alignrun.rollout import encode_prompts, frozen_encoding, response_mask, sample
 
 CHUNK = 64  # sequences per generation batch
 
@@ -34,38 +34,49 @@ class EvalResult:
     greedy: list[str]            # [n] greedy replies, for readable before/after pairs
     greedy_harm: np.ndarray      # [n]
     greedy_judge: np.ndarray | None
+    kl_exact: np.ndarray | None = None  # [n, k] sum over tokens of KL(pi || pi_ref) of the next-token distributions
 
 
+@torch.no_grad()
 def _generate(policy: Policy, prompts: list[str], cfg: Experiment, device: torch.device,
-              do_sample: bool) -> tuple[list[str], list[list[int]], np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+              do_sample: bool) -> tuple[list[str], list[list[int]], dict[str, np.ndarray]]:
+    """Replies and, per reply, sums over its tokens of: policy log-prob, k1 (log pi - log pi_ref), the exact KL
+    of the next-token distributions, reference NLL, and the token count. Both models are run teacher-forced
+    on the sampled replies (reusing the frozen encoder output), so their full next-token distributions line up."""
     tok = policy.tokenizer
     texts: list[str] = []
     ids_out: list[list[int]] = []
-    lp, kl, nll, ntok = [], [], [], []
+    sums: dict[str, list[torch.Tensor]] = {k: [] for k in ("logp", "kl", "kl_exact", "ref_nll", "tokens")}
     for i in range(0, len(prompts), CHUNK):
         ids, mask = encode_prompts(tok, prompts[i: i + CHUNK], cfg.generation.max_prompt_tokens, device)
         hidden = frozen_encoding(policy, ids, mask)
-        seqs, logp, _ = sample(policy, ids, mask, cfg.generation.max_new_tokens, do_sample=do_sample,
-                               with_values=False, encoder_hidden=hidden)
+        seqs, _, _ = sample(policy, ids, mask, cfg.generation.max_new_tokens, do_sample=do_sample,
+                            with_values=False, encoder_hidden=hidden)
         resp = seqs[:, 1:]
         m = response_mask(resp, tok.eos_token_id)
         resp = torch.where(m.bool(), resp, torch.full_like(resp, tok.pad_token_id))
-        ref = reference_logprobs(policy, ids, mask, seqs[:, :-1], resp, hidden)
-        lp.append((logp * m).sum(1))
-        kl.append(((logp - ref) * m).sum(1))
-        nll.append(-(ref * m).sum(1))
-        ntok.append(m.sum(1))
+        forward = dict(input_ids=ids, attention_mask=mask, decoder_input_ids=seqs[:, :-1],
+                       encoder_outputs=encoder_outputs(hidden), use_cache=False)
+        logp_all = torch.log_softmax(policy.lm(**forward).logits.float(), -1)
+        with policy.reference() as reference:
+            ref_all = torch.log_softmax(reference(**forward).logits.float(), -1)
+        logp = logp_all.gather(-1, resp.unsqueeze(-1)).squeeze(-1)
+        ref = ref_all.gather(-1, resp.unsqueeze(-1)).squeeze(-1)
+        exact = torch.stack([torch.from_numpy(metrics.next_token_kl(a.cpu().numpy(), b.cpu().numpy()))
+                             for a, b in zip(logp_all, ref_all)]).to(m)  # one reply at a time: [T, V] in memory
+        for key, value in (("logp", logp), ("kl", logp - ref), ("kl_exact", exact), ("ref_nll", -ref),
+                           ("tokens", torch.ones_like(m))):
+            sums[key].append((value * m).sum(1))
         texts.extend(t.strip() for t in tok.batch_decode(resp, skip_special_tokens=True))
         ids_out.extend(row[: int(n)].tolist() for row, n in zip(resp, m.sum(1)))
-    cat = lambda xs: torch.cat(xs).float().cpu().numpy()  # noqa: E731
-    return texts, ids_out, cat(lp), cat(kl), cat(nll), cat(ntok)
+    return texts, ids_out, {k: torch.cat(v).float().cpu().numpy() for k, v in sums.items()}
 
 
 def evaluate_policy(policy: Policy, prompts: list[str], scorer: Any, judge: Any, cfg: Experiment,
                     device: torch.device) -> EvalResult:
     n, k = len(prompts), cfg.evaluation.samples_per_prompt
     flat = [p for p in prompts for _ in range(k)]
-    texts, ids, lp, kl, nll, ntok = _generate(policy, flat, cfg, device, do_sample=True)
+    texts, ids, per_reply = _generate(policy, flat, cfg, device, do_sample=True)
     greedy, *_ = _generate(policy, prompts, cfg, device, do_sample=False)
     harm = scorer.score(texts + greedy).harm
     judged = judge.score(texts + greedy).harm if judge is not None else None
@@ -74,9 +85,20 @@ def evaluate_policy(policy: Policy, prompts: list[str], scorer: Any, judge: Any,
         prompts=prompts, samples=[texts[i * k:(i + 1) * k] for i in range(n)],
         token_ids=[ids[i * k:(i + 1) * k] for i in range(n)],
         harm=np.asarray(harm[: n * k]).reshape(shape), judge=None if judged is None else np.asarray(judged[: n * k]).reshape(shape),
-        logp=lp.reshape(shape), kl=kl.reshape(shape), ref_nll=nll.reshape(shape), tokens=ntok.reshape(shape), greedy=greedy,
+        logp=per_reply["logp"].reshape(shape), kl=per_reply["kl"].reshape(shape),
+        ref_nll=per_reply["ref_nll"].reshape(shape), tokens=per_reply["tokens"].reshape(shape), greedy=greedy,
         greedy_harm=np.asarray(harm[n * k:]), greedy_judge=None if judged is None else np.asarray(judged[n * k:]),
+        kl_exact=per_reply["kl_exact"].reshape(shape),
     )
+
+
+def drift(before: EvalResult, after: EvalResult, cfg: Experiment) -> dict[str, Any] | None:
+    """Exact-KL drift from the reference per prompt (mean over its k replies), before and after training, with a
+    paired bootstrap interval over prompts of the change; None for samples written before exact KL was stored."""
+    if before.kl_exact is None or after.kl_exact is None:
+        return None
+    ev = cfg.evaluation
+    return metrics.paired_change(before.kl_exact.mean(1), after.kl_exact.mean(1), ev.bootstrap_resamples, cfg.run.seed)
 
 
 def write_samples(path: Path, r: EvalResult) -> None:
@@ -87,7 +109,8 @@ def write_samples(path: Path, r: EvalResult) -> None:
             rows.append({"prompt_index": i, "prompt": prompt, "sample": j, "greedy": False, "text": text,
                          "token_ids": r.token_ids[i][j],
                          "harm": float(r.harm[i, j]), "judge": None if r.judge is None else float(r.judge[i, j]),
-                         "logp": float(r.logp[i, j]), "kl": float(r.kl[i, j]), "ref_nll": float(r.ref_nll[i, j]), "tokens": int(r.tokens[i, j])})
+                         "logp": float(r.logp[i, j]), "kl": float(r.kl[i, j]),
+                         "kl_exact": None if r.kl_exact is None else float(r.kl_exact[i, j]), "ref_nll": float(r.ref_nll[i, j]), "tokens": int(r.tokens[i, j])})
         rows.append({"prompt_index": i, "prompt": prompt, "sample": None, "greedy": True, "text": r.greedy[i],
                      "harm": float(r.greedy_harm[i]),
                      "judge": None if r.greedy_judge is None else float(r.greedy_judge[i])})
@@ -102,6 +125,7 @@ def read_samples(path: Path) -> EvalResult:
     k = len(sampled) // max(n, 1)
     grid = lambda key: np.array([r[key] for r in sampled], dtype=float).reshape(n, k)  # noqa: E731
     has_judge = bool(rows) and rows[0]["judge"] is not None
+    has_exact = bool(sampled) and all(r.get("kl_exact") is not None for r in sampled)  # absent in older files
     return EvalResult(
         prompts=[r["prompt"] for r in greedy], samples=[[r["text"] for r in sampled[i * k:(i + 1) * k]] for i in range(n)],
         token_ids=[[r["token_ids"] for r in sampled[i * k:(i + 1) * k]] for i in range(n)],
@@ -109,6 +133,7 @@ def read_samples(path: Path) -> EvalResult:
         tokens=grid("tokens"), greedy=[r["text"] for r in greedy],
         greedy_harm=np.array([r["harm"] for r in greedy]),
         greedy_judge=np.array([r["judge"] for r in greedy]) if has_judge else None,
+        kl_exact=grid("kl_exact") if has_exact else None,
     )
 
 
@@ -140,6 +165,7 @@ def summarise(r: EvalResult, cfg: Experiment) -> dict[str, Any]:
         "guards": {
             "perplexity_under_reference": metrics.perplexity(float(r.ref_nll.sum()), int(r.tokens.sum())),
             "kl_to_reference": float(np.mean(r.kl)),
+            "kl_exact_to_reference": None if r.kl_exact is None else float(np.mean(r.kl_exact)),
             "length_mean_words": float(words.mean()) if len(words) else 0.0,
             "length_median_words": float(np.median(words)) if len(words) else 0.0,
             "distinct_1": metrics.distinct_n(flat, 1),
