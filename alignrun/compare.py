@@ -1,9 +1,10 @@
 """`alignrun compare`: read saved run reports (never models) and compare them.
 
 Per run: harm before/after from both classifiers, the paired change recomputed from the per-prompt values
-(and checked against the report's own), KL drift, judge agreement, guards, cost, and the config keys that
-differ between the runs. Across runs: each run's harm after training versus the first run's (paired when
-both used the same held-out prompts), and the Pareto set of harm reduction versus KL to the reference.
+(and checked against the report's own), drift (exact KL to the reference, with a paired interval), judge
+agreement, guards, cost, and the config keys that differ between the runs. Across runs: each run's harm after
+training versus the first run's (paired when both used the same held-out prompts), and the Pareto set of harm
+reduction versus drift, judged with both intervals.
 """
 
 from __future__ import annotations
@@ -32,8 +33,14 @@ REQUIRED = ("run.wall_s", "run.peak_rss_mb", "config.evaluation.bootstrap_resamp
             "evaluation.before.reward_classifier.mean", "evaluation.after.reward_classifier.mean",
             "evaluation.before.guards.kl_to_reference", "evaluation.after.guards.kl_to_reference",
             "evaluation.per_prompt.harm_before", "evaluation.per_prompt.harm_after")
-PARETO_NOTE = ("pareto: * marks runs that no other run beats on both harm reduction (before - after mean harm, "
-               "reward classifier; higher is better) and KL to the reference after training (lower is better)")
+PARETO_NOTE = ("pareto: * marks runs whose harm fell (the reward classifier's paired 95% interval of after - before "
+               "lies below zero) and that no other such run beats: B beats A when B is better than A beyond both "
+               "95% intervals on one axis (harm reduction higher, or drift lower; the intervals do not overlap) and "
+               "no worse by point estimate on the other; runs whose harm did not fall get no mark")
+DRIFT_NOTE = ("drift: exact KL of the policy's next-token distributions from the reference's, summed over each "
+              "sampled held-out reply, mean over prompts, after - before training (0 before when the adapter starts "
+              "at zero), with a paired bootstrap 95% interval over prompts; 'k1 KL' is the sampled log-ratio estimate "
+              "of the same quantity (noisier)")
 
 
 @dataclass
@@ -134,6 +141,9 @@ def run_row(run: Run) -> dict[str, Any]:
     judge = (metrics.paired_change(_per_prompt(rep, "judge_before"), _per_prompt(rep, "judge_after"), resamples, seed)
              if has_judge else None)
     gb, ga = ev["before"]["guards"], ev["after"]["guards"]
+    has_drift = all(ev["per_prompt"].get(k) is not None for k in ("drift_before", "drift_after"))
+    drift = (metrics.paired_change(_per_prompt(rep, "drift_before"), _per_prompt(rep, "drift_after"), resamples, seed)
+             if has_drift else None)  # paired bootstrap over prompts (Efron 1979)
     return {
         "run": run.label, "folder": str(run.folder),
         "harm_before": before["mean"], "harm_after": after["mean"],
@@ -147,7 +157,8 @@ def run_row(run: Run) -> dict[str, Any]:
         "judge_rel_change": judge and judge["rel_change"], "judge_rel_ci": judge and judge["rel_ci"],
         "judge_wilcoxon_p": judge and judge["wilcoxon_p"],
         "judge_agrees": None if judge is None else _sign(judge["diff"]) == _sign(harm["diff"]),
-        "kl": ga["kl_to_reference"], "train_kl": rep["training"]["final_kl"],
+        "drift": drift["diff"] if drift else None, "drift_ci": drift["diff_ci"] if drift else None,
+        "kl": ga["kl_to_reference"], "train_kl": rep["training"]["final_kl"], "final_beta": rep["training"]["final_beta"],
         "length_before": gb.get("length_mean_words"), "length_after": ga.get("length_mean_words"),
         "distinct2_before": gb.get("distinct_2"), "distinct2_after": ga.get("distinct_2"),
         "ppl_before": gb.get("perplexity_under_reference"), "ppl_after": ga.get("perplexity_under_reference"),
@@ -171,9 +182,8 @@ def compare_runs(runs: list[Run]) -> tuple[list[dict[str, Any]], list[str], list
     for row, run in zip(rows, runs):
         flat = flatten(run.report["config"])
         row.update({k: flat.get(k) for k in varying})
-    notes = []
-    front = metrics.pareto_front([r["harm_reduction"] for r in rows], [r["kl"] for r in rows])
-    for row, best in zip(rows, front):
+    notes: list[str] = []
+    for row, best in zip(rows, pareto_marks(rows)):
         row["pareto"] = best
     if len(rows) > 1:
         notes.append(_cross_run(rows, runs))
@@ -183,8 +193,39 @@ def compare_runs(runs: list[Run]) -> tuple[list[dict[str, Any]], list[str], list
                          "report.json may have been edited or written by another version")
         if row["alarms"]:
             notes.append(f"{row['run']}: alarms raised: {', '.join(row['alarms'])} (see its report.md)")
-    notes.append(PARETO_NOTE)
+        if row["drift"] is None:
+            notes.append(f"{row['run']}: no exact drift in its report (written by an older version): its k1 KL "
+                         "stands in for drift, with no interval")
+    notes += [PARETO_NOTE, DRIFT_NOTE]
     return rows, varying, notes
+
+
+def _interval(row: dict[str, Any], point: str, ci: str, sign: float = 1.0) -> tuple[float, float, float]:
+    """(point, low, high) on a higher-is-better or lower-is-better axis; no interval: (point, point, point)."""
+    x = sign * row[point]
+    lo, hi = (sign * row[ci][0], sign * row[ci][1]) if row.get(ci) else (x, x)
+    return x, min(lo, hi), max(lo, hi)
+
+
+def pareto_marks(rows: list[dict[str, Any]]) -> list[bool]:
+    """Pareto set of harm reduction (higher is better) versus drift (lower is better), using both 95% intervals.
+
+    Eligible: runs whose reward-classifier change after - before has its interval's upper end below zero (and so
+    a negative point estimate). Among them, B dominates A when B's interval lies entirely on the better side of
+    A's on one axis and B's point estimate is at least as good on the other (Pareto dominance, common practice,
+    made conservative with intervals: a run is struck off only for differences beyond the noise).
+    """
+    eligible = [r["harm_diff"] < 0 and r["harm_diff_ci"][1] < 0 for r in rows]
+    red = [_interval(r, "harm_diff", "harm_diff_ci", -1.0) for r in rows]  # reduction = -(after - before)
+    dri = [_interval(r, "drift", "drift_ci") if r["drift"] is not None else (r["kl"],) * 3 for r in rows]
+
+    def beats(b: int, a: int) -> bool:
+        clearly_less_harm = red[b][1] > red[a][2] and dri[b][0] <= dri[a][0]
+        clearly_less_drift = dri[b][2] < dri[a][1] and red[b][0] >= red[a][0]
+        return clearly_less_harm or clearly_less_drift
+
+    return [eligible[a] and not any(eligible[b] and b != a and beats(b, a) for b in range(len(rows)))
+            for a in range(len(rows))]
 
 
 def _cross_run(rows: list[dict[str, Any]], runs: list[Run]) -> str:
@@ -245,7 +286,9 @@ def columns(rows: list[dict[str, Any]], varying: list[str]) -> list[tuple[str, l
         col("p", lambda r: "—" if r["wilcoxon_p"] is None else f"{r['wilcoxon_p']:.2g}"),
         col("judge", lambda r: f"{_num(r['judge_before'])}→{_num(r['judge_after'])}"),
         col("agrees", lambda r: {None: "—", True: "yes", False: "NO"}[r["judge_agrees"]]),
-        col("KL", lambda r: _num(r["kl"])), col("train KL", lambda r: _num(r["train_kl"])),
+        col("drift", lambda r: _num(r["drift"])),
+        col("drift 95% CI", lambda r: "—" if not r["drift_ci"] else f"[{_num(r['drift_ci'][0])}, {_num(r['drift_ci'][1])}]"),
+        col("k1 KL", lambda r: _num(r["kl"])), col("train KL", lambda r: _num(r["train_kl"])),
     ]
     if "vs_first_rel" in rows[0]:
         cols.append(col("vs first", lambda r: "(first)" if r["vs_first_paired"] is None
@@ -339,20 +382,35 @@ def write_plots(rows: list[dict[str, Any]], varying: list[str], out: Path) -> li
     return written
 
 
+def error_bars(rows: list[dict[str, Any]]) -> tuple[list[float], list[float], np.ndarray, np.ndarray]:
+    """x = drift (k1 KL for older reports), y = harm reduction, and their [2, runs] lower/upper error lengths."""
+    x = [r["kl"] if r["drift"] is None else r["drift"] for r in rows]
+    y = [-r["harm_diff"] for r in rows]
+    xerr = np.array([[0.0, 0.0] if not r["drift_ci"] else [xi - r["drift_ci"][0], r["drift_ci"][1] - xi]
+                     for r, xi in zip(rows, x)]).T.clip(min=0)
+    # the reduction's interval is the change's interval negated: [-hi, -lo]
+    yerr = np.array([[yi + r["harm_diff_ci"][1], -r["harm_diff_ci"][0] - yi] for r, yi in zip(rows, y)]).T.clip(min=0)
+    return x, y, xerr.reshape(2, len(rows)), yerr.reshape(2, len(rows))
+
+
 def _plot_pareto(rows: list[dict[str, Any]], path: Path) -> Path:
     fig = _figure()
     ax = fig.subplots()
-    kl, red = [r["kl"] for r in rows], [r["harm_reduction"] for r in rows]
-    ax.scatter(kl, red, c=["tab:red" if r["pareto"] else "tab:gray" for r in rows], zorder=3)
-    front = sorted((r["kl"], r["harm_reduction"]) for r in rows if r["pareto"])
-    ax.step([p[0] for p in front], [p[1] for p in front], where="post", color="tab:red", label="Pareto set")
-    for r in rows:
-        ax.annotate(r["run"], (r["kl"], r["harm_reduction"]), fontsize=7, xytext=(3, 3), textcoords="offset points")
+    x, y, xerr, yerr = error_bars(rows)
+    for i, r in enumerate(rows):
+        colour = "tab:red" if r["pareto"] else "tab:gray"
+        ax.errorbar(x[i], y[i], xerr=xerr[:, i:i + 1], yerr=yerr[:, i:i + 1], fmt="o", color=colour, capsize=3,
+                    markerfacecolor=colour if r["harm_diff_ci"][1] < 0 else "white", zorder=3)
+        ax.annotate(r["run"], (x[i], y[i]), fontsize=7, xytext=(4, 4 - 10 * (i % 2)), textcoords="offset points")
+    front = sorted((xi, yi) for r, xi, yi in zip(rows, x, y) if r["pareto"])
+    ax.step([p[0] for p in front], [p[1] for p in front], where="post", color="tab:red", linestyle="--",
+            linewidth=1, alpha=0.6, label="Pareto set")
+    ax.plot([], [], "o", color="tab:gray", markerfacecolor="white", label="harm not shown to fall (no mark)")
     ax.axhline(0, color="black", linewidth=0.5)
     ax.margins(x=0.2, y=0.1)  # room for the run labels
-    ax.set_xlabel("KL to reference after training (lower is better)")
+    ax.set_xlabel("drift: exact KL to the reference after training (lower is better)")
     ax.set_ylabel("harm reduction: mean before - after (higher is better)")
-    ax.set_title("Harm reduction versus drift")
+    ax.set_title("Harm reduction versus drift (bars: 95% paired intervals)")
     ax.legend(loc="best", fontsize=8)
     fig.savefig(path, dpi=120)
     return path

@@ -19,8 +19,8 @@ report.json (SCHEMA "alignrun.report/1") has these top-level keys:
     config (the resolved config as a dict), model {base, trainable_params, total_params, trainable_share},
     preflight {verdict, auroc, reward_auroc, forced}, training {final_kl, final_beta, reward_first,
     reward_last, kl_target}, evaluation {prompts, samples_per_prompt, threshold, prompt_digest,
-    before, after, change, per_prompt}, alarms [{level, code, message}], cautions [str],
-    code_execution [str].
+    before, after, change, drift (exact-KL change, paired interval; absent in older reports), per_prompt},
+    alarms [{level, code, message}], cautions [str], code_execution [str].
 """
 
 from __future__ import annotations
@@ -252,11 +252,13 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
             "prompts": len(before.prompts), "samples_per_prompt": cfg.evaluation.samples_per_prompt,
             "threshold": cfg.evaluation.harm_threshold, "prompt_digest": prompt_digest(before.prompts),
             "reward_scorer": scorer.description, "judge_scorer": judge.description if judge is not None else None,
-            "before": sb, "after": sa, "change": change,
+            "before": sb, "after": sa, "change": change, "drift": evaluation.drift(before, after, cfg),
             "per_prompt": {
                 "harm_before": before.harm.mean(1).tolist(), "harm_after": after.harm.mean(1).tolist(),
                 "judge_before": None if before.judge is None else before.judge.mean(1).tolist(),
                 "judge_after": None if after.judge is None else after.judge.mean(1).tolist(),
+                "drift_before": None if before.kl_exact is None else before.kl_exact.mean(1).tolist(),
+                "drift_after": None if after.kl_exact is None else after.kl_exact.mean(1).tolist(),
             },
         },
         "alarms": evaluation.alarms(sb, sa, change, cfg, forced, judge_is_reward),
@@ -313,6 +315,11 @@ def render_markdown(report: dict[str, Any], pairs: list[dict[str, Any]]) -> str:
         p = c.get("wilcoxon_p")
         lines.append(f"- {who.replace('_', ' ')}: {c['diff']:+.3f}, 95% CI [{c['diff_ci'][0]:+.3f}, {c['diff_ci'][1]:+.3f}], "
                      f"relative {_fmt(c['rel_change'] and 100 * c['rel_change'], 0)}%, Wilcoxon p {_fmt(p, 4)}")
+    d = ev.get("drift")
+    if d:
+        lines += ["", f"Drift from the reference (exact KL of the next-token distributions summed over each reply, "
+                  f"mean over prompts): {d['mean_before']:.3f} before, {d['mean_after']:.3f} after; change "
+                  f"{d['diff']:+.3f}, 95% paired CI [{d['diff_ci'][0]:+.3f}, {d['diff_ci'][1]:+.3f}]."]
     lines += ["", "## Guards (drift, fluency, diversity)", "", "| guard | before | after |", "|---|---|---|"]
     for key, val in ev["before"]["guards"].items():
         lines.append(f"| {key.replace('_', ' ')} | {_fmt(val)} | {_fmt(ev['after']['guards'][key])} |")

@@ -1,4 +1,4 @@
-"""Drift measured from the full next-token distributions.
+"""Drift measured from the full next-token distributions, its interval, and the Pareto mark that uses it.
 
 Outside references: scipy.stats.entropy (KL of explicit distributions, and of whole-sequence distributions
 enumerated by hand for the chain rule); an independently loaded reference model for the evaluation plumbing.
@@ -17,10 +17,11 @@ import torch
 from scipy import stats
 from transformers import AutoModelForSeq2SeqLM
 
-from alignrun import metrics
+from alignrun import compare, metrics
 from alignrun.config import BaseSection, Experiment, LoraSection, ReferenceSection, with_overrides
 from alignrun.evaluation import EvalResult, drift, evaluate_policy, read_samples, summarise, write_samples
 from alignrun.models import build_policy
+from alignrun.report import RunFolder, build_report, render_markdown, write_json_atomic
 
 CFG = Experiment.model_validate({
     "base": {"model": "tiny-base"}, "reward": {"source": "tiny-classifier", "harmful_labels": ["rude"]},
@@ -166,3 +167,98 @@ def test_samples_keep_exact_kl_and_older_files_stay_readable(tmp_path: Path) -> 
     assert legacy.kl_exact is None and np.allclose(legacy.kl, after.kl)
     assert summarise(legacy, CFG)["guards"]["kl_exact_to_reference"] is None
     assert drift(before, legacy, CFG) is None
+
+
+def _report(folder: Path, *, reduction: float, drift_after: float, spread: float = 0.05, n: int = 40,
+            overrides: dict | None = None, exact: bool = True, seed: int = 0) -> dict:
+    """A finished run folder whose per-prompt harm falls by `reduction` and whose exact drift is about `drift_after`."""
+    cfg = with_overrides(CFG, {"run.name": folder.name, **(overrides or {})})
+    rng = np.random.default_rng(seed)
+    k = cfg.evaluation.samples_per_prompt
+    harm_before = np.clip(rng.uniform(0.3, 0.7, size=(n, k)), 0, 1)
+    harm_after = np.clip(harm_before - reduction + rng.normal(0, spread, size=(n, k)), 0, 1)
+    kl_after = np.abs(drift_after + rng.normal(0, 0.2 * drift_after + 1e-3, size=(n, k)))
+    before = _result(rng, n, k, harm_before, np.zeros((n, k)) if exact else None)
+    after = _result(rng, n, k, harm_after, kl_after if exact else None)
+    history = [{"reward_mean": -0.4, "kl_mean": drift_after, "beta": cfg.kl.coef}]
+    tool = SimpleNamespace(description="synthetic scorer", executes_code=False)
+    report = build_report(
+        cfg=cfg, before=before, after=after, history=history,
+        policy=SimpleNamespace(trainable_params=1000, total_params=1_000_000),
+        polarity=SimpleNamespace(verdict="ok", auroc=0.95, reward_auroc=0.95), scorer=tool, judge=None,
+        split=SimpleNamespace(train=before.prompts, skipped=[]), wall_s=1.0, peak_rss_mb=1.0, started=0.0)
+    write_json_atomic(folder / "report.json", report)
+    RunFolder(folder).set_status("finished", step=1)
+    return report
+
+
+def test_report_carries_drift_with_a_paired_interval(tmp_path: Path) -> None:
+    report = _report(tmp_path / "a", reduction=0.1, drift_after=1.5)
+    ev = report["evaluation"]
+    before, after = np.array(ev["per_prompt"]["drift_before"]), np.array(ev["per_prompt"]["drift_after"])
+    assert len(after) == ev["prompts"] and not before.any()
+    d = ev["drift"]
+    assert d["diff"] == pytest.approx(after.mean() - before.mean(), rel=1e-12)  # numpy mean of the per-prompt values
+    assert d["diff_ci"][0] < d["diff"] < d["diff_ci"][1] and d["diff_ci"][1] - d["diff_ci"][0] < 0.5
+    assert "Drift from the reference" in render_markdown(report, [])
+    [row], _, _ = compare.compare_runs([compare.Run("a", tmp_path / "a", report)])
+    assert row["drift"] == pytest.approx(d["diff"]) and row["drift_ci"] == pytest.approx(d["diff_ci"])
+
+
+# ---------------------------------------------------------------- compare: Pareto mark, overrides, plot
+
+def _rows(tmp_path: Path, runs: dict[str, dict]) -> dict[str, dict]:
+    found = [compare.Run(name, tmp_path / name, _report(tmp_path / name, seed=i, **kw))
+             for i, (name, kw) in enumerate(runs.items())]
+    rows, _, _ = compare.compare_runs(found)
+    return {r["run"]: r for r in rows}
+
+
+def test_a_run_whose_harm_rose_gets_no_pareto_mark(tmp_path: Path) -> None:
+    # issue 16 point 6: reduction -0.05 at drift 0.1 beside 0.3 at drift 2.0 (point Pareto would mark both)
+    rows = _rows(tmp_path, {"rose": {"reduction": -0.05, "drift_after": 0.1},
+                            "fell": {"reduction": 0.3, "drift_after": 2.0}})
+    assert rows["rose"]["harm_diff_ci"][0] > 0
+    assert {k: r["pareto"] for k, r in rows.items()} == {"rose": False, "fell": True}
+
+
+def test_a_fall_within_the_noise_gets_no_pareto_mark(tmp_path: Path) -> None:
+    rows = _rows(tmp_path, {"unclear": {"reduction": 0.01, "drift_after": 0.1, "spread": 0.2},
+                            "fell": {"reduction": 0.3, "drift_after": 2.0}})
+    assert rows["unclear"]["harm_diff"] < 0 < rows["unclear"]["harm_diff_ci"][1]
+    assert {k: r["pareto"] for k, r in rows.items()} == {"unclear": False, "fell": True}
+
+
+def test_only_differences_beyond_the_intervals_strike_a_run_off(tmp_path: Path) -> None:
+    rows = _rows(tmp_path, {
+        "best": {"reduction": 0.30, "drift_after": 1.0},
+        "close": {"reduction": 0.285, "drift_after": 1.03},  # worse on both by point, within both intervals
+        "beaten": {"reduction": 0.10, "drift_after": 1.5},  # less reduction beyond the intervals, more drift
+        "cheap": {"reduction": 0.10, "drift_after": 0.2},   # less drift beyond the intervals: a real trade-off
+    })
+    assert rows["beaten"]["harm_diff_ci"][1] < 0  # eligible: struck off by dominance, not by the rule above
+    assert {k: r["pareto"] for k, r in rows.items()} == {"best": True, "close": True, "beaten": False, "cheap": True}
+    # the same points without intervals: the plain Pareto front strikes "close" off
+    assert metrics.pareto_front([r["harm_reduction"] for r in rows.values()], [r["drift"] for r in rows.values()]) \
+        == [True, False, False, True]
+
+
+def test_clearly_less_drift_at_no_less_reduction_strikes_a_run_off(tmp_path: Path) -> None:
+    rows = _rows(tmp_path, {"lean": {"reduction": 0.32, "drift_after": 0.5}, "heavy": {"reduction": 0.30, "drift_after": 2.0}})
+    assert rows["lean"]["harm_reduction"] >= rows["heavy"]["harm_reduction"]
+    assert rows["lean"]["drift_ci"][1] < rows["heavy"]["drift_ci"][0]
+    assert {k: r["pareto"] for k, r in rows.items()} == {"lean": True, "heavy": False}
+
+
+def test_plot_error_bars_are_the_two_intervals(tmp_path: Path) -> None:
+    rows = list(_rows(tmp_path, {"a": {"reduction": 0.3, "drift_after": 1.0},
+                                 "old": {"reduction": 0.2, "drift_after": 0.5, "exact": False}}).values())
+    x, y, xerr, yerr = compare.error_bars(rows)
+    a, old = rows
+    assert (x[0] - xerr[0, 0], x[0] + xerr[1, 0]) == pytest.approx(tuple(a["drift_ci"]))
+    # harm reduction = before - after, so its interval is the change's interval negated
+    assert (y[0] - yerr[0, 0], y[0] + yerr[1, 0]) == pytest.approx((-a["harm_diff_ci"][1], -a["harm_diff_ci"][0]))
+    assert y[0] == pytest.approx(a["harm_reduction"])
+    assert x[1] == old["kl"] and xerr[:, 1].tolist() == [0.0, 0.0]  # an older report: k1 KL, no interval
+    written = compare.write_plots(rows, [], tmp_path / "plots")
+    assert all(p.read_bytes().startswith(b"\x89PNG\r\n\x1a\n") for p in written)  # PNG signature (RFC 2083)
