@@ -2,9 +2,9 @@
 
 Per run: harm before/after from both classifiers, the paired change recomputed from the per-prompt values
 (and checked against the report's own), drift (exact KL to the reference, with a paired interval), judge
-agreement, guards, cost, and the config keys that differ between the runs. Across runs: each run's harm after
-training versus the first run's (paired when both used the same held-out prompts), and the Pareto set of harm
-reduction versus drift, judged with both intervals.
+agreement, guards, cost, and the config keys that differ between the runs, with a note when another setting
+overrode one. Across runs: each run's harm after training versus the first run's (paired when both used the
+same held-out prompts), and the Pareto set of harm reduction versus drift, judged with both intervals.
 """
 
 from __future__ import annotations
@@ -41,6 +41,16 @@ DRIFT_NOTE = ("drift: exact KL of the policy's next-token distributions from the
               "sampled held-out reply, mean over prompts, after - before training (0 before when the adapter starts "
               "at zero), with a paired bootstrap 95% interval over prompts; 'k1 KL' is the sampled log-ratio estimate "
               "of the same quantity (noisier)")
+# (swept key, setting that takes it over, when, what happened instead): rules of ppo.KLController and data.load_prompts
+OVERRIDES = (
+    ("kl.coef", "kl.target", lambda c: c.get("kl.target") is not None,
+     "beta adapted towards kl.target, so kl.coef was only its starting value (each report.md gives the final beta); "
+     "sweep a fixed coefficient with kl.target unset"),
+    ("kl.gain", "kl.target", lambda c: c.get("kl.target") is None,
+     "kl.gain only acts when kl.target is set; beta stayed at kl.coef"),
+    ("data.heldout_share", "data.heldout", lambda c: c.get("data.heldout") is not None,
+     "the held-out prompts came from data.heldout, so data.heldout_share split nothing"),
+)
 
 
 @dataclass
@@ -182,7 +192,7 @@ def compare_runs(runs: list[Run]) -> tuple[list[dict[str, Any]], list[str], list
     for row, run in zip(rows, runs):
         flat = flatten(run.report["config"])
         row.update({k: flat.get(k) for k in varying})
-    notes: list[str] = []
+    notes = overridden(runs, varying)
     for row, best in zip(rows, pareto_marks(rows)):
         row["pareto"] = best
     if len(rows) > 1:
@@ -198,6 +208,21 @@ def compare_runs(runs: list[Run]) -> tuple[list[dict[str, Any]], list[str], list
                          "stands in for drift, with no interval")
     notes += [PARETO_NOTE, DRIFT_NOTE]
     return rows, varying, notes
+
+
+def overridden(runs: list[Run], varying: list[str]) -> list[str]:
+    """Notes on swept keys that had no effect in some runs because another setting took them over."""
+    flat = [flatten(r.report["config"]) for r in runs]
+    notes = []
+    for key, other, applies, why in OVERRIDES:
+        hit = [r.label for r, c in zip(runs, flat) if applies(c)]
+        if key in varying and hit:
+            values = sorted({"unset" if c.get(other) is None else json.dumps(c.get(other))
+                             for r, c in zip(runs, flat) if r.label in hit})
+            notes.append(f"{key} differs between the runs but had no effect in {len(hit)} of {len(runs)} "
+                         f"({other} = {', '.join(values)}): {why} (runs: {', '.join(hit[:6])}"
+                         f"{', …' if len(hit) > 6 else ''})")
+    return notes
 
 
 def _interval(row: dict[str, Any], point: str, ci: str, sign: float = 1.0) -> tuple[float, float, float]:

@@ -250,6 +250,23 @@ def test_clearly_less_drift_at_no_less_reduction_strikes_a_run_off(tmp_path: Pat
     assert {k: r["pareto"] for k, r in rows.items()} == {"lean": True, "heavy": False}
 
 
+def test_compare_says_when_a_swept_key_was_overridden(tmp_path: Path) -> None:
+    def notes(runs: dict[str, dict]) -> str:
+        found = [compare.Run(name, tmp_path / name, _report(tmp_path / name, **kw)) for name, kw in runs.items()]
+        return "\n".join(compare.compare_runs(found)[2])
+
+    adaptive = notes({f"t{c}": {"reduction": 0.2, "drift_after": 1.0, "overrides": {"kl.coef": c, "kl.target": 2.0}}
+                      for c in (0.02, 0.2)})
+    assert "kl.coef differs between the runs but had no effect in 2 of 2 (kl.target = 2.0)" in adaptive
+    fixed = notes({f"f{c}": {"reduction": 0.2, "drift_after": 1.0, "overrides": {"kl.coef": c}} for c in (0.02, 0.2)})
+    assert "had no effect" not in fixed
+    gain = notes({f"g{g}": {"reduction": 0.2, "drift_after": 1.0, "overrides": {"kl.gain": g}} for g in (0.1, 0.5)})
+    assert "kl.gain differs between the runs but had no effect in 2 of 2 (kl.target = unset)" in gain
+    split = notes({f"h{h}": {"reduction": 0.2, "drift_after": 1.0,
+                             "overrides": {"data.heldout_share": h, "data.heldout": "heldout.jsonl"}} for h in (0.1, 0.3)})
+    assert 'data.heldout_share differs between the runs but had no effect in 2 of 2 (data.heldout = "heldout.jsonl")' in split
+
+
 def test_plot_error_bars_are_the_two_intervals(tmp_path: Path) -> None:
     rows = list(_rows(tmp_path, {"a": {"reduction": 0.3, "drift_after": 1.0},
                                  "old": {"reduction": 0.2, "drift_after": 0.5, "exact": False}}).values())
