@@ -430,6 +430,7 @@ def _plot_pareto(rows: list[dict[str, Any]], path: Path) -> Path:
     front = sorted((xi, yi) for r, xi, yi in zip(rows, x, y) if r["pareto"])
     ax.step([p[0] for p in front], [p[1] for p in front], where="post", color="tab:red", linestyle="--",
             linewidth=1, alpha=0.6, label="Pareto set")
+    ax.plot([], [], "o", color="tab:gray", label="harm fell, beaten beyond the intervals")
     ax.plot([], [], "o", color="tab:gray", markerfacecolor="white", label="harm not shown to fall (no mark)")
     ax.axhline(0, color="black", linewidth=0.5)
     ax.margins(x=0.2, y=0.1)  # room for the run labels

@@ -227,7 +227,7 @@ def test_demo_sweep_local_rerun_and_compare(demo_models: Any, tmp_path: Path, ca
     args = {"out": str(root), "backend": "local", "workers": 2, "address": None, "quiet": True}
     assert sweep.run_sweep(str(SWEEP_DEMO), TINY, **args) == 0  # two worker processes, one core each
     index = json.loads((root / "sweep.json").read_text())
-    assert len(index["trials"]) == 4 and {t["state"] for t in index["trials"]} == {"finished"}
+    assert len(index["trials"]) == 6 and {t["state"] for t in index["trials"]} == {"finished"}
     for trial in index["trials"]:
         report = load_report(root / trial["folder"])
         assert report["run"]["steps"] == 2 and report["evaluation"]["prompts"] == 8
@@ -237,7 +237,7 @@ def test_demo_sweep_local_rerun_and_compare(demo_models: Any, tmp_path: Path, ca
     capsys.readouterr()
 
     assert sweep.run_sweep(str(SWEEP_DEMO), TINY, **args) == 0  # re-run: everything is skipped
-    assert "(4 already finished, skipped)" in capsys.readouterr().out
+    assert "(6 already finished, skipped)" in capsys.readouterr().out
     assert stamps == {name: (root / name / "report.json").stat().st_mtime_ns for name in stamps}
 
     assert compare_cli([str(root)], fmt="table", plot_dir=str(tmp_path / "plots"), report=None) == 0
