@@ -70,8 +70,9 @@ def perplexity(nll_sum: float, n_tokens: int) -> float:
 def next_token_kl(logp: ArrayLike, logq: ArrayLike) -> np.ndarray:
     """KL(p || q) between next-token distributions given as log-probabilities, over the last axis (vocabulary).
 
-    Summed along a reply sampled from p, it is an unbiased estimate of the sequence KL with less variance than
-    the sampled log-ratio (k1), by the chain rule. Terms where p is 0 contribute 0; where only q is 0, inf.
+    Summed along a reply sampled from p, it is an unbiased estimate of the sequence KL, usually with less variance
+    than the sampled log-ratio (k1), by the chain rule for relative entropy (Cover & Thomas 2006, Thm 2.5.3,
+    from memory). Terms where p is 0 contribute 0; where only q is 0, inf.
     """
     lp, lq = np.asarray(logp, dtype=float), np.asarray(logq, dtype=float)
     p = np.exp(lp)
