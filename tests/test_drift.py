@@ -98,10 +98,10 @@ def _zero_scorer() -> SimpleNamespace:
     return SimpleNamespace(score=lambda texts: SimpleNamespace(harm=np.zeros(len(texts))))
 
 
-def _tiny_eval(tiny_models: dict, perturb: bool) -> tuple[EvalResult, object, Experiment, list[str]]:
+def _tiny_eval(tiny_models: dict, perturb: bool, scope: str = "decoder") -> tuple[EvalResult, object, Experiment, list[str]]:
     torch.manual_seed(0)
-    policy = build_policy(BaseSection(model=str(tiny_models["t5"])), LoraSection(rank=4), ReferenceSection(),
-                          torch.device("cpu"))
+    policy = build_policy(BaseSection(model=str(tiny_models["t5"])), LoraSection(rank=4, scope=scope),
+                          ReferenceSection(), torch.device("cpu"))
     if perturb:
         with torch.no_grad():
             for name, param in policy.lm.named_parameters():
@@ -113,8 +113,9 @@ def _tiny_eval(tiny_models: dict, perturb: bool) -> tuple[EvalResult, object, Ex
     return result, policy, cfg, prompts
 
 
-def test_evaluation_exact_kl_matches_a_hand_computation(tiny_models: dict) -> None:
-    result, policy, _, prompts = _tiny_eval(tiny_models, perturb=True)
+@pytest.mark.parametrize("scope", ["decoder", "encoder-decoder"])  # frozen encoder output reused, or not
+def test_evaluation_exact_kl_matches_a_hand_computation(tiny_models: dict, scope: str) -> None:
+    result, policy, _, prompts = _tiny_eval(tiny_models, perturb=True, scope=scope)
     ref = AutoModelForSeq2SeqLM.from_pretrained(tiny_models["t5"]).eval()  # an independent copy of the base
     start = ref.config.decoder_start_token_id
     assert result.kl_exact is not None
