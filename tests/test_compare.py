@@ -47,7 +47,8 @@ def _eval_result(prompts: list[str], harm: np.ndarray, judge: np.ndarray | None,
 
 
 def make_run(folder: Path, *, effect: float, drift: float, overrides: dict | None = None, prompt_set: int = 0,
-             with_judge: bool = True, judge_effect: float | None = None, n: int = 24) -> dict:
+             with_judge: bool = True, judge_effect: float | None = None, n: int = 24,
+             judge_polarity: SimpleNamespace | None = None) -> dict:
     """A finished run folder whose harm falls by about `effect` (a share) at KL about `drift`."""
     cfg = with_overrides(BASE, {"run.name": folder.name, **(overrides or {})})
     k = cfg.evaluation.samples_per_prompt
@@ -71,7 +72,8 @@ def make_run(folder: Path, *, effect: float, drift: float, overrides: dict | Non
                                tokenizer=SimpleNamespace(eos_token_id=1)),
         polarity=SimpleNamespace(verdict="ok", auroc=0.95, reward_auroc=0.95), scorer=tool,
         judge=tool if with_judge else None, split=SimpleNamespace(train=prompts, skipped=[]),
-        wall_s=float(rng.uniform(30, 90)), peak_rss_mb=float(rng.uniform(400, 900)), started=0.0)
+        wall_s=float(rng.uniform(30, 90)), peak_rss_mb=float(rng.uniform(400, 900)), started=0.0,
+        judge_polarity=judge_polarity)
     write_json_atomic(folder / "report.json", report)
     RunFolder(folder).set_status("finished", step=4)
     return report
@@ -149,6 +151,19 @@ def test_one_verdict_everywhere(tmp_path: Path, capsys: pytest.CaptureFixture) -
         assert (row["verdict"], row["verdict_reason"]) == (expected, v["reason"])
         table, _ = run_compare(capsys, [tmp_path / name])
         assert expected in table.splitlines()[1]
+
+
+def test_the_judges_own_check_reaches_verdict_and_alarms(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    # build_report(judge_polarity=...) as the preflight passes it: a judge that failed its polarity check
+    # cannot confirm a gain, and a disagreement names it as a suspect
+    report = make_run(tmp_path / "bad", effect=0.3, drift=0.2, judge_polarity=SimpleNamespace(verdict="inverted"))
+    assert report["verdict"]["verdict"] == "not shown" and "inverted" in report["verdict"]["reason"]
+    report = make_run(tmp_path / "good", effect=0.3, drift=0.2, judge_polarity=SimpleNamespace(verdict="ok"))
+    assert report["verdict"]["verdict"] == "improved"
+    report = make_run(tmp_path / "weak", effect=0.3, drift=0.2, judge_effect=0.007,
+                      judge_polarity=SimpleNamespace(verdict="weak"))
+    [message] = [a["message"] for a in report["alarms"] if a["code"] == "reward-judge-disagree"]
+    assert "faulty judge (its polarity check: weak)" in message
 
 
 def test_compare_reads_the_stored_verdict_and_recomputes_it_for_older_reports(tmp_path: Path,
