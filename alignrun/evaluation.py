@@ -149,6 +149,7 @@ def summarise(r: EvalResult, cfg: Experiment, eos_id: int) -> dict[str, Any]:
             "kl_to_reference": float(np.mean(r.kl)),
             "length_mean_words": float(words.mean()) if len(words) else 0.0,
             "length_median_words": float(np.median(words)) if len(words) else 0.0,
+            "distinct_1": metrics.distinct_n(flat, 1),  # the same with either denominator
             "distinct_2_per_ngram": metrics.distinct_n(flat, 2, per="ngrams"),
             "distinct_2_per_token": metrics.distinct_n(flat, 2, per="tokens"),
             "empty_share": metrics.share_empty(flat),

@@ -297,6 +297,7 @@ GUARD_LABELS = {  # how reports name each guard; the denominators are part of th
     "kl_to_reference": "KL to the reference (nats per reply)",
     "length_mean_words": "length, mean words",
     "length_median_words": "length, median words",
+    "distinct_1": "distinct-1, distinct words / words",
     "distinct_2_per_ngram": "distinct-2, distinct bigrams / bigrams",
     "distinct_2_per_token": "distinct-2 (Li et al. 2016), distinct bigrams / words",
     "empty_share": "empty replies, share",

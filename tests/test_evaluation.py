@@ -195,6 +195,8 @@ def test_degeneration_guards_on_constructed_replies() -> None:
     ])
     guards = summarise(result, cfg, eos_id=eos)["guards"]
     assert guards["truncated_share"] == pytest.approx(2 / 4)  # counted by hand
+    # distinct-1 (Li et al. 2016): words w1, w5..w10 -> 7 distinct of 21 words, by hand
+    assert guards["distinct_1"] == pytest.approx(7 / 21)
     # "w7 w8 w7 w8 w7 w8": 3 four-grams, 2 unique -> seq-rep-4 = 1/3 (Welleck et al. 2019); the others have none
     # repeated; text of a reply = its ids as words, EOS included
     assert guards["seq_rep_4_mean"] == pytest.approx((1 / 3) / 4)
