@@ -192,7 +192,10 @@ def paired_change(
     diff_ci, method = mean_diff_ci(a - b, n_resamples, seed, level)
     # randomisation test: under no effect each prompt's difference is as likely negated (Fisher 1935, from memory)
     p = None if np.all(a == b) else _permutation_p((a - b,), np.mean, "samples", n_resamples, seed)
-    return {**_summary(b, a, diff_ci), "interval": method, "p_value": p, "test": PAIRED_TEST, "paired": True}
+    patterns = (f"all {2 ** len(b)} sign patterns" if 2 ** len(b) <= n_resamples else
+                f"{n_resamples} random sign patterns, so p is never below {2 / (n_resamples + 1):.2g}")
+    return {**_summary(b, a, diff_ci), "interval": method, "p_value": p, "test": f"{PAIRED_TEST} ({patterns})",
+            "paired": True}
 
 
 def unpaired_change(
