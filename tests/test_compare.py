@@ -146,7 +146,12 @@ def test_one_verdict_everywhere(tmp_path: Path, capsys: pytest.CaptureFixture) -
         v = report["verdict"]
         assert v["verdict"] == expected
         assert summary_text(report).splitlines()[0].endswith(f"VERDICT: {expected.upper()} - {v['reason']}")
-        assert f"**{expected.upper()}**: {v['reason']}." in render_markdown(report, [])
+        markdown = render_markdown(report, [])
+        assert f"**{expected.upper()}**: {v['reason']}." in markdown
+        # distinct-2 is named by its denominator both ways; the degeneration guards are shown before and after
+        for label in ("distinct-2, distinct bigrams / bigrams", "distinct-2 (Li et al. 2016), distinct bigrams / words",
+                      "seq-rep-4 (Welleck et al. 2019), mean", "replies cut off at the token limit, share"):
+            assert f"| {label} |" in markdown
         [row] = as_json(capsys, [tmp_path / name])
         assert (row["verdict"], row["verdict_reason"]) == (expected, v["reason"])
         table, _ = run_compare(capsys, [tmp_path / name])
