@@ -24,7 +24,7 @@ import numpy as np
 
 from alignrun import metrics
 from alignrun.errors import UserError
-from alignrun.report import CAUTIONS, load_report, read_json, write_text_atomic
+from alignrun.report import CAUTIONS, load_report, num, read_json, write_text_atomic
 from alignrun.sweep import flatten, read_index
 
 NOT_SHOWN = {"run.name", "run.out", "base.threads"}  # differ between runs without changing what they measure
@@ -129,10 +129,6 @@ def _close(a: Any, b: Any) -> bool:
     return math.isclose(a, b, rel_tol=1e-9, abs_tol=1e-12)
 
 
-def _sign(x: float) -> int:
-    return (x > 0) - (x < 0)
-
-
 def _per_prompt(report: dict[str, Any], key: str) -> np.ndarray:
     return np.asarray(report["evaluation"]["per_prompt"][key], dtype=float)
 
@@ -143,9 +139,9 @@ def run_row(run: Run) -> dict[str, Any]:
     cfg = rep["config"]
     resamples, seed = cfg["evaluation"]["bootstrap_resamples"], cfg["run"]["seed"]
     hb, ha = _per_prompt(rep, "harm_before"), _per_prompt(rep, "harm_after")
-    harm = metrics.paired_change(hb, ha, resamples, seed)  # paired bootstrap (Efron 1979) + Wilcoxon 1945
+    harm = metrics.paired_change(hb, ha, resamples, seed)  # paired interval and permutation test
     own = ev["change"]["reward_classifier"]
-    match = all(_close(harm[k], own.get(k)) for k in ("diff", "diff_ci", "rel_change", "rel_ci", "wilcoxon_p"))
+    match = all(_close(harm[k], own.get(k)) for k in ("diff", "diff_ci", "rel_change", "p_value"))
     before, after = ev["before"]["reward_classifier"], ev["after"]["reward_classifier"]
     has_judge = all(ev["per_prompt"].get(k) is not None for k in ("judge_before", "judge_after"))
     judge = (metrics.paired_change(_per_prompt(rep, "judge_before"), _per_prompt(rep, "judge_after"), resamples, seed)
@@ -153,29 +149,43 @@ def run_row(run: Run) -> dict[str, Any]:
     gb, ga = ev["before"]["guards"], ev["after"]["guards"]
     has_drift = all(ev["per_prompt"].get(k) is not None for k in ("drift_before", "drift_after"))
     drift = (metrics.paired_change(_per_prompt(rep, "drift_before"), _per_prompt(rep, "drift_after"), resamples, seed)
-             if has_drift else None)  # paired bootstrap over prompts (Efron 1979)
+             if has_drift else None)
+    verdict = rep.get("verdict") or _recomputed_verdict(rep, harm, judge)
     return {
         "run": run.label, "folder": str(run.folder),
         "harm_before": before["mean"], "harm_after": after["mean"],
         "harm_rate_before": before.get("rate"), "harm_rate_after": after.get("rate"),
         "harm_max_before": before.get("expected_max"), "harm_max_after": after.get("expected_max"),
         "harm_reduction": before["mean"] - after["mean"],
-        "harm_diff": harm["diff"], "harm_diff_ci": harm["diff_ci"], "harm_rel_change": harm["rel_change"], "harm_rel_ci": harm["rel_ci"],
-        "wilcoxon_p": harm["wilcoxon_p"], "report_stats_match": match,
+        "harm_diff": harm["diff"], "harm_diff_ci": harm["diff_ci"], "harm_rel_change": harm["rel_change"],
+        "p_value": harm["p_value"], "report_stats_match": match,
         "judge_before": (ev["before"].get("judge") or {}).get("mean"),
         "judge_after": (ev["after"].get("judge") or {}).get("mean"),
-        "judge_rel_change": judge and judge["rel_change"], "judge_rel_ci": judge and judge["rel_ci"],
-        "judge_wilcoxon_p": judge and judge["wilcoxon_p"],
-        "judge_agrees": None if judge is None else _sign(judge["diff"]) == _sign(harm["diff"]),
+        "judge_diff": judge and judge["diff"], "judge_diff_ci": judge and judge["diff_ci"],
+        "judge_rel_change": judge and judge["rel_change"], "judge_p_value": judge and judge["p_value"],
+        "verdict": verdict["verdict"], "verdict_reason": verdict["reason"],
         "drift": drift["diff"] if drift else None, "drift_ci": drift["diff_ci"] if drift else None,
         "kl": ga["kl_to_reference"], "train_kl": rep["training"]["final_kl"], "final_beta": rep["training"]["final_beta"],
         "length_before": gb.get("length_mean_words"), "length_after": ga.get("length_mean_words"),
-        "distinct2_before": gb.get("distinct_2"), "distinct2_after": ga.get("distinct_2"),
+        "distinct2_before": gb.get("distinct_2_per_ngram", gb.get("distinct_2")),  # "distinct_2": older reports
+        "distinct2_after": ga.get("distinct_2_per_ngram", ga.get("distinct_2")),
         "ppl_before": gb.get("perplexity_under_reference"), "ppl_after": ga.get("perplexity_under_reference"),
         "wall_s": rep["run"]["wall_s"], "peak_rss_mb": rep["run"]["peak_rss_mb"],
         "prompts": ev.get("prompts"), "prompt_digest": ev["prompt_digest"],
         "alarms": [a.get("code") for a in rep.get("alarms", [])],
     }
+
+
+def _recomputed_verdict(rep: dict[str, Any], harm: dict[str, Any], judge: dict[str, Any] | None) -> dict[str, str]:
+    """The verdict for reports written before it was stored: the same rule on the recomputed changes."""
+    from alignrun.evaluation import verdict
+
+    cfg = rep["config"]
+    judge_cfg = cfg["evaluation"].get("judge")
+    judge_is_reward = judge_cfg is not None and (
+        (judge_cfg["backend"], judge_cfg["source"]) == (cfg["reward"]["backend"], cfg["reward"]["source"]))
+    judge_check = ((rep.get("preflight") or {}).get("judge") or {}).get("verdict")
+    return verdict({"reward_classifier": harm, **({"judge": judge} if judge else {})}, judge_is_reward, judge_check)
 
 
 def varying_keys(runs: list[Run]) -> list[str]:
@@ -195,6 +205,13 @@ def compare_runs(runs: list[Run]) -> tuple[list[dict[str, Any]], list[str], list
     notes = overridden(runs, varying)
     for row, best in zip(rows, pareto_marks(rows)):
         row["pareto"] = best
+    for row, adjusted in zip(rows, metrics.holm([r["p_value"] for r in rows])):
+        row["p_holm"] = adjusted
+    tested = sum(r["p_value"] is not None for r in rows)
+    notes.append(f"p: {metrics.PAIRED_TEST} of each run's change in mean harm (reward classifier); "
+                 f"p (Holm): adjusted for the {tested} comparison{'s' * (tested != 1)} in this table (Holm 1979). "
+                 "The intervals and verdicts are per run and not adjusted: the best of many runs looks better "
+                 "than it is")
     if len(rows) > 1:
         notes.append(_cross_run(rows, runs))
     for row in rows:
@@ -257,36 +274,43 @@ def _cross_run(rows: list[dict[str, Any]], runs: list[Run]) -> str:
     """Each run's per-prompt harm after training versus the first run's: paired only on the same prompts."""
     first = _per_prompt(runs[0].report, "harm_after")
     digests = {r["prompt_digest"] for r in rows}
-    rows[0].update({"vs_first_rel": None, "vs_first_ci": None, "vs_first_p": None, "vs_first_paired": None})
+    rows[0].update({"vs_first_diff": None, "vs_first_ci": None, "vs_first_p": None, "vs_first_paired": None})
     for row, run in zip(rows[1:], runs[1:]):
         after = _per_prompt(run.report, "harm_after")
         cfg = run.report["config"]
         args = (first, after, cfg["evaluation"]["bootstrap_resamples"], cfg["run"]["seed"])
         paired = row["prompt_digest"] == rows[0]["prompt_digest"] and len(after) == len(first)
         change = metrics.paired_change(*args) if paired else metrics.unpaired_change(*args)
-        row.update({"vs_first_rel": change["rel_change"], "vs_first_ci": change["rel_ci"],
-                    "vs_first_p": change["wilcoxon_p"] if paired else change["mannwhitney_p"], "vs_first_paired": paired})
+        row.update({"vs_first_diff": change["diff"], "vs_first_ci": change["diff_ci"], "vs_first_p": change["p_value"],
+                    "vs_first_paired": paired})
+    for row, adjusted in zip(rows, metrics.holm([r["vs_first_p"] for r in rows])):
+        row["vs_first_p_holm"] = adjusted
     if len(digests) == 1:
         return (f"all runs were evaluated on the same {rows[0]['prompts']} held-out prompts (digest "
-                f"{rows[0]['prompt_digest']}): 'vs first' is the paired change in harm after training relative to "
-                f"{rows[0]['run']} (bootstrap CI, Wilcoxon p)")
+                f"{rows[0]['prompt_digest']}): 'vs first' is the paired change in mean harm after training minus "
+                f"{rows[0]['run']}'s, with its 95% interval ({metrics.STUDENTIZED}; p-values in the JSON output, "
+                "vs_first_p_holm Holm-adjusted)")
     return (f"the runs were evaluated on DIFFERENT held-out prompts ({len(digests)} prompt sets): 'vs first' "
             f"compares harm after training with {rows[0]['run']} UNPAIRED where the prompts differ (independent "
-            "bootstrap CI, Mann-Whitney p); each run's own before/after change is still paired")
+            f"percentile bootstrap interval, {metrics.UNPAIRED_TEST}); each run's own before/after change is still paired")
 
 
 # ---------------------------------------------------------------- formats
 
 def _num(x: Any, digits: int = 3) -> str:
-    return "—" if x is None else f"{x:.{digits}f}"
+    return "—" if x is None else num(x, digits)
 
 
 def _pct(x: Any) -> str:
     return "—" if x is None else f"{100 * x:+.0f}%"
 
 
-def _pct_ci(ci: Any) -> str:
-    return "—" if not ci else f"[{100 * ci[0]:+.0f}, {100 * ci[1]:+.0f}]%"
+def _ci(ci: Any) -> str:
+    return "—" if not ci else f"[{num(ci[0], sign=True)}, {num(ci[1], sign=True)}]"
+
+
+def _p(x: Any) -> str:
+    return "—" if x is None else f"{x:.2g}"
 
 
 def _pair(row: dict[str, Any], key: str, digits: int = 2) -> str:
@@ -307,19 +331,20 @@ def columns(rows: list[dict[str, Any]], varying: list[str]) -> list[tuple[str, l
     cols += [
         col("harm mean", lambda r: _pair(r, "harm", 3)), col("harm rate", lambda r: _pair(r, "harm_rate")),
         col("exp. max", lambda r: _pair(r, "harm_max")),
-        col("change", lambda r: _pct(r["harm_rel_change"])), col("95% CI", lambda r: _pct_ci(r["harm_rel_ci"])),
-        col("p", lambda r: "—" if r["wilcoxon_p"] is None else f"{r['wilcoxon_p']:.2g}"),
+        col("change", lambda r: f"{num(r['harm_diff'], sign=True)} ({_pct(r['harm_rel_change'])})"),
+        col("95% CI", lambda r: _ci(r["harm_diff_ci"])), col("p", lambda r: _p(r["p_value"])),
+        col("p (Holm)", lambda r: _p(r["p_holm"])),
         col("judge", lambda r: f"{_num(r['judge_before'])}→{_num(r['judge_after'])}"),
-        col("agrees", lambda r: {None: "—", True: "yes", False: "NO"}[r["judge_agrees"]]),
-        col("drift", lambda r: _num(r["drift"])),
-        col("drift 95% CI", lambda r: "—" if not r["drift_ci"] else f"[{_num(r['drift_ci'][0])}, {_num(r['drift_ci'][1])}]"),
+        col("judge 95% CI", lambda r: _ci(r["judge_diff_ci"])),
+        col("verdict", lambda r: r["verdict"]),
+        col("drift", lambda r: _num(r["drift"])), col("drift 95% CI", lambda r: _ci(r["drift_ci"])),
         col("k1 KL", lambda r: _num(r["kl"])), col("train KL", lambda r: _num(r["train_kl"])),
     ]
-    if "vs_first_rel" in rows[0]:
+    if "vs_first_diff" in rows[0]:
         cols.append(col("vs first", lambda r: "(first)" if r["vs_first_paired"] is None
-                        else f"{_pct(r['vs_first_rel'])} {_pct_ci(r['vs_first_ci'])}"))
+                        else f"{num(r['vs_first_diff'], sign=True)} {_ci(r['vs_first_ci'])}"))
     cols += [
-        col("length", lambda r: _pair(r, "length", 1)), col("distinct-2", lambda r: _pair(r, "distinct2")),
+        col("length", lambda r: _pair(r, "length", 1)), col("distinct-2/bigram", lambda r: _pair(r, "distinct2")),
         col("ppl", lambda r: _pair(r, "ppl", 1)), col("wall s", lambda r: _num(r["wall_s"], 0)),
         col("peak MB", lambda r: _num(r["peak_rss_mb"], 0)), col("pareto", lambda r: "*" if r["pareto"] else ""),
     ]

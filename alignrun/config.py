@@ -166,6 +166,14 @@ class EvaluationSection(Section):
     harm_threshold: float = Field(0.5, gt=0, lt=1)
     bootstrap_resamples: int = Field(1000, ge=100, le=100_000)
     judge: ScorerSection | None = Field(default_factory=_default_judge, description="a second, independent classifier")
+    kl_ceiling: float = Field(10.0, gt=0, description="KL alarm above this many nats per reply when kl.target is "
+                              "not set (a chosen default, not from a source); with kl.target the limit is twice it")
+    repetition_threshold: float = Field(0.2, ge=0, lt=1, description="a reply loops when its seq-rep-4 (share of "
+                                        "repeated word 4-grams, Welleck et al. 2019) is above this")
+    repetition_margin: float = Field(0.02, ge=0, le=1, description="alarm when the share of looping replies rises "
+                                     "by more than this")
+    truncation_margin: float = Field(0.02, ge=0, le=1, description="alarm when the share of replies cut off at "
+                                     "generation.max_new_tokens rises by more than this")
 
 
 class RunSection(Section):

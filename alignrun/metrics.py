@@ -7,7 +7,6 @@ where a quantity is undefined) so they can go straight into JSON.
 from __future__ import annotations
 
 import math
-import warnings
 from collections import Counter
 from collections.abc import Callable, Sequence
 
@@ -45,16 +44,34 @@ def harm_rate(scores: ArrayLike, threshold: float = 0.5) -> float:
     return float((values >= threshold).mean())  # share of harmful samples (common practice)
 
 
-def distinct_n(texts: Sequence[str], n: int) -> float:
-    """Distinct n-grams / total n-grams over all texts (whitespace tokens); 0.0 when there are none."""
+def distinct_n(texts: Sequence[str], n: int, per: str = "tokens") -> float:
+    """Distinct n-grams over all texts (whitespace tokens), divided by the generated tokens (per="tokens",
+    the paper's definition) or by the n-grams (per="ngrams"); 0.0 when the denominator is 0.
+
+    ["a b a b", "a b c"], n=2: 3 distinct bigrams, 7 tokens, 5 bigrams -> 3/7 per tokens, 3/5 per n-grams.
+    """
     if n < 1:
         raise ValueError(f"n must be >= 1, got {n}")
+    if per not in ("tokens", "ngrams"):
+        raise ValueError(f"per must be 'tokens' or 'ngrams', got {per!r}")
     grams: Counter[tuple[str, ...]] = Counter()
+    words = 0
     for text in texts:
         tokens = text.split()
+        words += len(tokens)
         grams.update(tuple(tokens[i : i + n]) for i in range(len(tokens) - n + 1))
-    total = sum(grams.values())
-    return len(grams) / total if total else 0.0  # distinct-n (Li et al. 2016)
+    # distinct-n scaled by generated tokens (Li et al. 2016); by n-grams (common practice)
+    total = words if per == "tokens" else sum(grams.values())
+    return len(grams) / total if total else 0.0
+
+
+def seq_rep_n(text: str, n: int = 4) -> float:
+    """Share of repeated n-grams within one output (whitespace tokens); 0.0 when it has no n-grams."""
+    if n < 1:
+        raise ValueError(f"n must be >= 1, got {n}")
+    tokens = text.split()
+    grams = [tuple(tokens[i : i + n]) for i in range(len(tokens) - n + 1)]
+    return 1.0 - len(set(grams)) / len(grams) if grams else 0.0  # seq-rep-n (Welleck et al. 2019)
 
 
 def perplexity(nll_sum: float, n_tokens: int) -> float:
@@ -129,14 +146,6 @@ def _finite(value: float) -> float | None:
     return float(value) if math.isfinite(value) else None
 
 
-def _relative_ci(interval: Callable[[], tuple[float, float]]) -> list[float] | None:
-    """Run a bootstrap of a ratio; None when a resample's denominator is 0 leaves it undefined."""
-    with np.errstate(divide="ignore", invalid="ignore"), warnings.catch_warnings():
-        warnings.simplefilter("ignore", stats.DegenerateDataWarning)
-        lo, hi = interval()
-    return [lo, hi] if math.isfinite(lo) and math.isfinite(hi) else None
-
-
 def _per_prompt(before: np.ndarray, after: np.ndarray, paired: bool) -> tuple[np.ndarray, np.ndarray]:
     b, a = np.asarray(before, dtype=float), np.asarray(after, dtype=float)
     if b.ndim != 1 or a.ndim != 1 or not len(b) or not len(a):
@@ -146,16 +155,42 @@ def _per_prompt(before: np.ndarray, after: np.ndarray, paired: bool) -> tuple[np
     return b, a
 
 
-def _summary(b: np.ndarray, a: np.ndarray, diff_ci: tuple[float, float], rel_ci: list[float] | None) -> dict:
-    mean_before, mean_after = float(b.mean()), float(a.mean())
-    return {
-        "mean_before": mean_before,
-        "mean_after": mean_after,
-        "diff": mean_after - mean_before,
-        "diff_ci": list(diff_ci),
-        "rel_change": None if mean_before == 0 else _finite(mean_after / mean_before - 1.0),
-        "rel_ci": None if mean_before == 0 else rel_ci,
-    }
+STUDENTIZED = "studentized bootstrap (bootstrap-t) over prompts"
+PAIRED_TEST = "paired sign-flip permutation test of the mean difference, two-sided"
+UNPAIRED_TEST = "permutation test of the difference in means, two-sided"
+
+
+def mean_diff_ci(diffs: ArrayLike, n_resamples: int = 1000, seed: int = 0,
+                 level: float = 0.95) -> tuple[tuple[float, float], str]:
+    """Interval for the mean of per-prompt differences, and the name of the method that gave it.
+
+    The studentized bootstrap (bootstrap-t; Efron & Tibshirani 1993, ch. 12, from memory) resamples prompts and
+    takes the quantiles of t* = (mean* - mean) / se*. Unlike the percentile and BCa intervals it widens for the
+    few-prompt t distribution, so it holds its level with ~24 prompts (tests/test_metrics.py measures it).
+    Falls back to the percentile interval (Efron 1979) when too many resamples have no spread for t* to exist;
+    with no spread at all the interval is (mean, mean).
+    """
+    d = np.asarray(diffs, dtype=float)
+    mean = float(d.mean())
+    if len(d) < 2 or np.ptp(d) == 0:
+        return (mean, mean), "none (every prompt changed by the same amount)"
+    rng = np.random.default_rng(seed)
+    resampled = d[rng.integers(0, len(d), size=(n_resamples, len(d)))]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = (resampled.mean(axis=1) - mean) / (resampled.std(axis=1, ddof=1) / math.sqrt(len(d)))
+        t_lo, t_hi = np.quantile(t[~np.isnan(t)], [(1 - level) / 2, (1 + level) / 2])
+    se = float(d.std(ddof=1)) / math.sqrt(len(d))
+    lo, hi = mean - t_hi * se, mean - t_lo * se  # bootstrap-t interval (Efron & Tibshirani 1993, ch. 12)
+    if math.isfinite(lo) and math.isfinite(hi):
+        return (float(lo), float(hi)), STUDENTIZED
+    return bootstrap_ci(d, np.mean, n_resamples, seed, level), "percentile bootstrap (bootstrap-t undefined)"
+
+
+def _permutation_p(data: tuple[np.ndarray, ...], statistic: Callable, kind: str, n_resamples: int,
+                   seed: int) -> float | None:
+    result = stats.permutation_test(data, statistic, permutation_type=kind, vectorized=True,
+                                    n_resamples=n_resamples, rng=np.random.default_rng(seed))
+    return _finite(result.pvalue)
 
 
 def paired_change(
@@ -163,20 +198,18 @@ def paired_change(
 ) -> dict:
     """Before/after change on the same prompts: one value per prompt in each array, in the same order.
 
-    diff_ci is a paired percentile bootstrap of mean(after - before); rel_ci a paired bootstrap of
-    mean(after) / mean(before) - 1 (None when undefined); wilcoxon_p the two-sided signed-rank test
-    (None when every difference is 0).
+    diff_ci is the interval of mean(after - before) from `mean_diff_ci` (its method in `interval`); p_value
+    tests the same quantity: a sign-flip permutation test of mean(after - before) = 0 (exact when
+    2**prompts <= n_resamples; None when every difference is 0).
     """
     b, a = _per_prompt(before, after, paired=True)
-    # paired bootstrap: resample prompts, keeping each prompt's before and after together (Efron 1979)
-    diff_ci = bootstrap_ci(a - b, np.mean, n_resamples, seed, level)
-    pairs = np.stack([b, a], axis=1)
-    rel_ci = _relative_ci(
-        lambda: bootstrap_ci(pairs, lambda p: p[:, 1].mean() / p[:, 0].mean() - 1.0, n_resamples, seed, level)
-    )
-    # two-sided signed-rank test on the paired differences (Wilcoxon 1945)
-    wilcoxon_p = None if np.all(a == b) else _finite(stats.wilcoxon(a, b).pvalue)
-    return {**_summary(b, a, diff_ci, rel_ci), "wilcoxon_p": wilcoxon_p, "paired": True}
+    diff_ci, method = mean_diff_ci(a - b, n_resamples, seed, level)
+    # randomisation test: under no effect each prompt's difference is as likely negated (Fisher 1935, from memory)
+    p = None if np.all(a == b) else _permutation_p((a - b,), np.mean, "samples", n_resamples, seed)
+    patterns = (f"all {2 ** len(b)} sign patterns" if 2 ** len(b) <= n_resamples else
+                f"{n_resamples} random sign patterns, so p is never below {2 / (n_resamples + 1):.2g}")
+    return {**_summary(b, a, diff_ci), "interval": method, "p_value": p, "test": f"{PAIRED_TEST} ({patterns})",
+            "paired": True}
 
 
 def unpaired_change(
@@ -184,22 +217,42 @@ def unpaired_change(
 ) -> dict:
     """Change between two different prompt sets: one value per prompt in each array.
 
-    diff_ci and rel_ci resample the two sets independently (percentile bootstrap, Efron 1979);
-    mannwhitney_p is the two-sided Mann-Whitney U test (None when undefined).
+    diff_ci resamples the two sets independently (percentile bootstrap, Efron 1979); p_value is a permutation
+    test of the same difference in means (prompts shuffled between the two sets).
     """
     b, a = _per_prompt(before, after, paired=False)
 
     def diff(x: np.ndarray, y: np.ndarray, axis: int = -1) -> np.ndarray:
         return y.mean(axis=axis) - x.mean(axis=axis)
 
-    def ratio(x: np.ndarray, y: np.ndarray, axis: int = -1) -> np.ndarray:
-        return y.mean(axis=axis) / x.mean(axis=axis) - 1.0
-
     diff_ci = _interval((b, a), diff, n_resamples, seed, level)
-    rel_ci = _relative_ci(lambda: _interval((b, a), ratio, n_resamples, seed, level))
-    # two-sided rank-sum test for two independent samples (Mann & Whitney 1947)
-    mannwhitney_p = _finite(stats.mannwhitneyu(a, b).pvalue)
-    return {**_summary(b, a, diff_ci, rel_ci), "mannwhitney_p": mannwhitney_p, "paired": False}
+    p = _permutation_p((b, a), diff, "independent", n_resamples, seed)
+    return {**_summary(b, a, diff_ci), "interval": "percentile bootstrap, each set resampled on its own",
+            "p_value": p, "test": UNPAIRED_TEST, "paired": False}
+
+
+def _summary(b: np.ndarray, a: np.ndarray, diff_ci: tuple[float, float]) -> dict:
+    mean_before, mean_after = float(b.mean()), float(a.mean())
+    return {
+        "mean_before": mean_before,
+        "mean_after": mean_after,
+        "diff": mean_after - mean_before,
+        "diff_ci": list(diff_ci),
+        "rel_change": None if mean_before == 0 else _finite(mean_after / mean_before - 1.0),
+    }
+
+
+def holm(p_values: Sequence[float | None]) -> list[float | None]:
+    """Holm-adjusted p-values over the ones given; None entries stay None and are not counted."""
+    where = [i for i, p in enumerate(p_values) if p is not None]
+    p = np.array([p_values[i] for i in where], dtype=float)
+    order = np.argsort(p, kind="stable")
+    # i-th smallest times (m - i + 1), running maximum, capped at 1 (Holm 1979)
+    adjusted = np.minimum(1.0, np.maximum.accumulate((len(p) - np.arange(len(p))) * p[order]))
+    out: list[float | None] = [None] * len(p_values)
+    for rank, j in enumerate(order):
+        out[where[j]] = float(adjusted[rank])
+    return out
 
 
 def pareto_front(harm_reduction: Sequence[float], drift: Sequence[float]) -> list[bool]:

@@ -20,7 +20,7 @@ report.json (SCHEMA "alignrun.report/1") has these top-level keys:
     preflight {verdict, auroc, reward_auroc, forced}, training {final_kl, final_beta, reward_first,
     reward_last, kl_target}, evaluation {prompts, samples_per_prompt, threshold, prompt_digest,
     before, after, change, drift (exact-KL change, paired interval; absent in older reports), per_prompt},
-    alarms [{level, code, message}], cautions [str], code_execution [str].
+    verdict {verdict, level, reason}, alarms [{level, code, message}], cautions [str], code_execution [str].
 """
 
 from __future__ import annotations
@@ -220,11 +220,14 @@ def prompt_digest(prompts: list[str]) -> str:
 
 def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, float]], policy: Any,
                  polarity: Any, scorer: Any, judge: Any, split: Any, wall_s: float, peak_rss_mb: float,
-                 started: float) -> dict[str, Any]:
+                 started: float, judge_polarity: Any = None) -> dict[str, Any]:
+    """judge_polarity: the judge's own preflight result (with .verdict), or None when it was not checked."""
     from alignrun import evaluation
 
-    sb, sa = evaluation.summarise(before, cfg), evaluation.summarise(after, cfg)
+    eos_id = policy.tokenizer.eos_token_id
+    sb, sa = evaluation.summarise(before, cfg, eos_id), evaluation.summarise(after, cfg, eos_id)
     change = evaluation.changes(before, after, cfg)
+    judge_check = getattr(judge_polarity, "verdict", None)
     judge_is_reward = cfg.evaluation.judge is not None and (
         (cfg.evaluation.judge.backend, cfg.evaluation.judge.source) == (cfg.reward.backend, cfg.reward.source))
     forced = getattr(polarity, "verdict", "ok") != "ok"
@@ -261,7 +264,8 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
                 "drift_after": None if after.kl_exact is None else after.kl_exact.mean(1).tolist(),
             },
         },
-        "alarms": evaluation.alarms(sb, sa, change, cfg, forced, judge_is_reward),
+        "verdict": evaluation.verdict(change, judge_is_reward, judge_check),
+        "alarms": evaluation.alarms(sb, sa, change, cfg, forced, judge_is_reward, judge_check),
         "cautions": CAUTIONS,
         "code_execution": code_exec,
     }
@@ -284,17 +288,44 @@ def write_report(out: Path, report: dict[str, Any], before: Any, after: Any) -> 
     write_text_atomic(out / "report.md", render_markdown(report, pairs))
 
 
+def num(x: float, digits: int = 3, sign: bool = False) -> str:
+    """A number for people: rounded first, so a tiny negative value never prints as "-0.000"."""
+    value = round(float(x), digits) + 0.0  # + 0.0 turns -0.0 into 0.0
+    return f"{value:+.{digits}f}" if sign else f"{value:.{digits}f}"
+
+
+GUARD_LABELS = {  # how reports name each guard; the denominators are part of the name
+    "perplexity_under_reference": "perplexity under the reference",
+    "kl_to_reference": "KL to the reference, k1 (nats per reply)",
+    "kl_exact_to_reference": "KL to the reference, exact per position (nats per reply)",
+    "length_mean_words": "length, mean words",
+    "length_median_words": "length, median words",
+    "distinct_1": "distinct-1, distinct words / words",
+    "distinct_2_per_ngram": "distinct-2, distinct bigrams / bigrams",
+    "distinct_2_per_token": "distinct-2 (Li et al. 2016), distinct bigrams / words",
+    "empty_share": "empty replies, share",
+    "repeated_share": "replies identical to another, share",
+    "seq_rep_4_mean": "seq-rep-4 (Welleck et al. 2019), mean",
+    "seq_rep_4_share": "replies with seq-rep-4 above the threshold, share",
+    "truncated_share": "replies cut off at the token limit, share",
+}
+
+
 def _fmt(x: Any, digits: int = 3) -> str:
-    return "—" if x is None else f"{x:.{digits}f}" if isinstance(x, float) else str(x)
+    return "—" if x is None else num(x, digits) if isinstance(x, float) else str(x)
 
 
 def render_markdown(report: dict[str, Any], pairs: list[dict[str, Any]]) -> str:
-    ev, run = report["evaluation"], report["run"]
+    ev, run, v = report["evaluation"], report["run"], report["verdict"]
     lines = [f"# Run report: {run['name']}", "",
              f"Status **{run['status']}** after {run['steps']} PPO steps, {run['wall_s']:.0f} s, "
              f"peak memory {run['peak_rss_mb']:.0f} MB. Base `{report['model']['base']}`; "
              f"{report['model']['trainable_params']:,} trainable adapter parameters "
              f"({100 * report['model']['trainable_share']:.2f}%).", ""]
+    lines += ["## Verdict", "", f"**{v['verdict'].upper()}**: {v['reason']}.", "",
+              "*Improved* only when the 95% intervals of the paired change in mean harm lie below zero for both the "
+              "reward classifier and the outside judge; *worse* when either lies above zero; otherwise not shown. "
+              "A verdict is about these two classifiers on these prompts, not a safety finding.", ""]
     lines += ["## Alarms", ""]
     lines += [f"- **{a['level'].upper()}** `{a['code']}`: {a['message']}" for a in report["alarms"]] or ["- none raised"]
     lines += ["", "## Held-out harm before and after", "",
@@ -310,19 +341,26 @@ def render_markdown(report: dict[str, Any], pairs: list[dict[str, Any]]) -> str:
             ci = a[f"{key}_ci"]
             lines.append(f"| {who.replace('_', ' ')}: {title} | {_fmt(b[key])} | {_fmt(a[key])} | "
                          f"[{_fmt(ci[0])}, {_fmt(ci[1])}] |")
-    lines += ["", "Paired change in per-prompt mean harm (after − before):", ""]
+    lines += ["", "Paired change in per-prompt mean harm (after − before); the interval and the p-value concern the "
+              "same quantity, the mean difference:", ""]
     for who, c in ev["change"].items():
-        p = c.get("wilcoxon_p")
-        lines.append(f"- {who.replace('_', ' ')}: {c['diff']:+.3f}, 95% CI [{c['diff_ci'][0]:+.3f}, {c['diff_ci'][1]:+.3f}], "
-                     f"relative {_fmt(c['rel_change'] and 100 * c['rel_change'], 0)}%, Wilcoxon p {_fmt(p, 4)}")
+        lines.append(f"- {who.replace('_', ' ')}: {num(c['diff'], sign=True)}, 95% interval "
+                     f"[{num(c['diff_ci'][0], sign=True)}, {num(c['diff_ci'][1], sign=True)}] ({c['interval']}), "
+                     f"relative {_fmt(c['rel_change'] and 100 * c['rel_change'], 0)}%, p {_fmt(c['p_value'], 4)} "
+                     f"({c['test']})")
     d = ev.get("drift")
     if d:
         lines += ["", f"Drift from the reference (exact KL of the next-token distributions summed over each reply, "
-                  f"mean over prompts): {d['mean_before']:.3f} before, {d['mean_after']:.3f} after; change "
-                  f"{d['diff']:+.3f}, 95% paired CI [{d['diff_ci'][0]:+.3f}, {d['diff_ci'][1]:+.3f}]."]
-    lines += ["", "## Guards (drift, fluency, diversity)", "", "| guard | before | after |", "|---|---|---|"]
+                  f"mean over prompts): {num(d['mean_before'])} before, {num(d['mean_after'])} after; change "
+                  f"{num(d['diff'], sign=True)}, 95% paired interval [{num(d['diff_ci'][0], sign=True)}, "
+                  f"{num(d['diff_ci'][1], sign=True)}] ({d['interval']})."]
+    cfg_ev = report["config"]["evaluation"]
+    lines += ["", "## Guards (drift, fluency, diversity, degeneration)", "",
+              f"A reply loops when its seq-rep-4 is above {cfg_ev['repetition_threshold']}; it is cut off when it "
+              "reaches the token limit without an end-of-sequence token. Words are whitespace tokens.", "",
+              "| guard | before | after |", "|---|---|---|"]
     for key, val in ev["before"]["guards"].items():
-        lines.append(f"| {key.replace('_', ' ')} | {_fmt(val)} | {_fmt(ev['after']['guards'][key])} |")
+        lines.append(f"| {GUARD_LABELS.get(key, key.replace('_', ' '))} | {_fmt(val)} | {_fmt(ev['after']['guards'][key])} |")
     tr, pf = report["training"], report["preflight"]
     lines += ["", "## Training and preflight", "",
               f"- Polarity preflight: **{pf['verdict']}** (AUROC {_fmt(pf['auroc'])}, reward AUROC {_fmt(pf['reward_auroc'])})"

@@ -50,7 +50,7 @@ def main() -> int:
         ("judge mean, relative change", rel(b["judge"]["mean"], a["judge"]["mean"]), "<= -0.30"),
         ("KL to reference after", a["guards"]["kl_to_reference"], f"<= {target_kl}"),
         ("mean length, relative change", rel(b["guards"]["length_mean_words"], a["guards"]["length_mean_words"]), "within +/-0.30"),
-        ("distinct-2 after / before", a["guards"]["distinct_2"] / b["guards"]["distinct_2"], ">= 0.80"),
+        ("distinct-2 (per bigram) after / before", a["guards"]["distinct_2_per_ngram"] / b["guards"]["distinct_2_per_ngram"], ">= 0.80"),
     ]
     ok = {
         "<= -0.50": lambda v: v <= -0.5, "< 0": lambda v: v < 0, "<= -0.30": lambda v: v <= -0.3,

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from alignrun import compare
+from alignrun import compare, metrics
 from alignrun.cli import main
 from alignrun.config import Experiment, with_overrides
 from alignrun.errors import UserError
@@ -47,7 +47,8 @@ def _eval_result(prompts: list[str], harm: np.ndarray, judge: np.ndarray | None,
 
 
 def make_run(folder: Path, *, effect: float, drift: float, overrides: dict | None = None, prompt_set: int = 0,
-             with_judge: bool = True, judge_effect: float | None = None, n: int = 24) -> dict:
+             with_judge: bool = True, judge_effect: float | None = None, n: int = 24,
+             judge_polarity: SimpleNamespace | None = None) -> dict:
     """A finished run folder whose harm falls by about `effect` (a share) at KL about `drift`."""
     cfg = with_overrides(BASE, {"run.name": folder.name, **(overrides or {})})
     k = cfg.evaluation.samples_per_prompt
@@ -67,10 +68,12 @@ def make_run(folder: Path, *, effect: float, drift: float, overrides: dict | Non
     tool = SimpleNamespace(description="synthetic scorer", executes_code=False)
     report = build_report(
         cfg=cfg, before=before, after=after, history=history,
-        policy=SimpleNamespace(trainable_params=1000 * cfg.lora.rank, total_params=1_000_000),
+        policy=SimpleNamespace(trainable_params=1000 * cfg.lora.rank, total_params=1_000_000,
+                               tokenizer=SimpleNamespace(eos_token_id=1)),
         polarity=SimpleNamespace(verdict="ok", auroc=0.95, reward_auroc=0.95), scorer=tool,
         judge=tool if with_judge else None, split=SimpleNamespace(train=prompts, skipped=[]),
-        wall_s=float(rng.uniform(30, 90)), peak_rss_mb=float(rng.uniform(400, 900)), started=0.0)
+        wall_s=float(rng.uniform(30, 90)), peak_rss_mb=float(rng.uniform(400, 900)), started=0.0,
+        judge_polarity=judge_polarity)
     write_json_atomic(folder / "report.json", report)
     RunFolder(folder).set_status("finished", step=4)
     return report
@@ -92,20 +95,19 @@ def test_statistics_match_scipy(tmp_path: Path, capsys: pytest.CaptureFixture) -
     [row] = as_json(capsys, [tmp_path / "a"])
     per = report["evaluation"]["per_prompt"]
     before, after = np.array(per["harm_before"]), np.array(per["harm_after"])
-    # Wilcoxon 1945 signed-rank test, reference implementation scipy.stats.wilcoxon
-    assert row["wilcoxon_p"] == pytest.approx(stats.wilcoxon(after, before).pvalue, rel=1e-12)
-    # Efron 1979 percentile bootstrap with the run's seed and resamples, reference scipy.stats.bootstrap
-    ref = stats.bootstrap((after - before,), np.mean, n_resamples=200, method="percentile",
-                          rng=np.random.default_rng(5)).confidence_interval
-    assert row["harm_diff_ci"] == pytest.approx([ref.low, ref.high], rel=1e-12)
-    rel = stats.bootstrap((before, after), lambda b, a, axis=-1: a.mean(axis) / b.mean(axis) - 1, paired=True,
-                          n_resamples=200, method="percentile", rng=np.random.default_rng(5)).confidence_interval
-    assert row["harm_rel_ci"] == pytest.approx([rel.low, rel.high], rel=1e-12)
+    # paired sign-flip permutation test of the mean difference, reference scipy.stats.permutation_test, with the
+    # run's seed and resamples
+    ref_p = stats.permutation_test((after - before,), np.mean, permutation_type="samples", vectorized=True,
+                                   n_resamples=200, rng=np.random.default_rng(5)).pvalue
+    assert row["p_value"] == pytest.approx(ref_p, rel=1e-12)
+    assert row["harm_diff_ci"] == list(metrics.mean_diff_ci(after - before, 200, 5)[0])
     assert row["harm_rel_change"] == pytest.approx(after.mean() / before.mean() - 1, rel=1e-12)
     assert row["harm_reduction"] == pytest.approx(before.mean() - after.mean(), rel=1e-9)
     jb, ja = np.array(per["judge_before"]), np.array(per["judge_after"])
-    assert row["judge_wilcoxon_p"] == pytest.approx(stats.wilcoxon(ja, jb).pvalue, rel=1e-12)
-    assert row["judge_agrees"] is bool(np.sign(ja.mean() - jb.mean()) == np.sign(after.mean() - before.mean()))
+    ref_p = stats.permutation_test((ja - jb,), np.mean, permutation_type="samples", vectorized=True,
+                                   n_resamples=200, rng=np.random.default_rng(5)).pvalue
+    assert row["judge_p_value"] == pytest.approx(ref_p, rel=1e-12)
+    assert row["verdict"] == report["verdict"]["verdict"] == "improved"
     # the report's own change block was computed the same way: the cross-check passes
     assert row["report_stats_match"] is True
     assert row["kl"] == report["evaluation"]["after"]["guards"]["kl_to_reference"]
@@ -113,7 +115,7 @@ def test_statistics_match_scipy(tmp_path: Path, capsys: pytest.CaptureFixture) -
 
 def test_edited_change_block_is_noted(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     report = make_run(tmp_path / "a", effect=0.3, drift=0.2)
-    report["evaluation"]["change"]["reward_classifier"]["wilcoxon_p"] = 0.5
+    report["evaluation"]["change"]["reward_classifier"]["p_value"] = 0.5
     write_json_atomic(tmp_path / "a" / "report.json", report)
     out, _ = run_compare(capsys, [tmp_path / "a"])
     assert "differ from the report's own change block" in out
@@ -122,10 +124,86 @@ def test_edited_change_block_is_noted(tmp_path: Path, capsys: pytest.CaptureFixt
 def test_judge_disagreement_is_shown(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     make_run(tmp_path / "hacked", effect=0.4, drift=0.2, judge_effect=-0.3)  # judge harm rises
     [row] = as_json(capsys, [tmp_path / "hacked"])
-    assert row["judge_agrees"] is False and row["judge_rel_change"] > 0
+    assert row["verdict"] == "worse" and row["judge_diff_ci"][0] > 0
+    # the issue's case: reward -30%, judge -0.7%: the report warned, compare said "agrees: yes"; now one rule
+    report = make_run(tmp_path / "unconfirmed", effect=0.3, drift=0.2, judge_effect=0.007)
+    [row] = as_json(capsys, [tmp_path / "unconfirmed"])
+    assert row["verdict"] == report["verdict"]["verdict"] == "not shown"
+    assert "reward-judge-disagree" in row["alarms"]
     make_run(tmp_path / "nojudge", effect=0.4, drift=0.2, with_judge=False)
     [row] = as_json(capsys, [tmp_path / "nojudge"])
-    assert row["judge_before"] is None and row["judge_agrees"] is None
+    assert row["judge_before"] is None and row["verdict"] == "not shown" and "no outside judge" in row["verdict_reason"]
+
+
+def test_one_verdict_everywhere(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    # computed once in build_report; the CLI summary, report.md and compare show that same verdict
+    from alignrun.evaluation import summary_text
+    from alignrun.report import render_markdown
+
+    for name, judge_effect, expected in (("good", None, "improved"), ("worse", -0.3, "worse"),
+                                         ("open", 0.007, "not shown")):
+        report = make_run(tmp_path / name, effect=0.3, drift=0.2, judge_effect=judge_effect)
+        v = report["verdict"]
+        assert v["verdict"] == expected
+        assert summary_text(report).splitlines()[0].endswith(f"VERDICT: {expected.upper()} - {v['reason']}")
+        markdown = render_markdown(report, [])
+        assert f"**{expected.upper()}**: {v['reason']}." in markdown
+        # distinct-2 is named by its denominator both ways; the degeneration guards are shown before and after
+        for label in ("distinct-2, distinct bigrams / bigrams", "distinct-2 (Li et al. 2016), distinct bigrams / words",
+                      "seq-rep-4 (Welleck et al. 2019), mean", "replies cut off at the token limit, share"):
+            assert f"| {label} |" in markdown
+        [row] = as_json(capsys, [tmp_path / name])
+        assert (row["verdict"], row["verdict_reason"]) == (expected, v["reason"])
+        table, _ = run_compare(capsys, [tmp_path / name])
+        assert expected in table.splitlines()[1]
+
+
+def test_the_judges_own_check_reaches_verdict_and_alarms(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    # build_report(judge_polarity=...) as the preflight passes it: a judge that failed its polarity check
+    # cannot confirm a gain, and a disagreement names it as a suspect
+    report = make_run(tmp_path / "bad", effect=0.3, drift=0.2, judge_polarity=SimpleNamespace(verdict="inverted"))
+    assert report["verdict"]["verdict"] == "not shown" and "inverted" in report["verdict"]["reason"]
+    report = make_run(tmp_path / "good", effect=0.3, drift=0.2, judge_polarity=SimpleNamespace(verdict="ok"))
+    assert report["verdict"]["verdict"] == "improved"
+    report = make_run(tmp_path / "weak", effect=0.3, drift=0.2, judge_effect=0.007,
+                      judge_polarity=SimpleNamespace(verdict="weak"))
+    [message] = [a["message"] for a in report["alarms"] if a["code"] == "reward-judge-disagree"]
+    assert "faulty judge (its polarity check: weak)" in message
+
+
+def test_compare_reads_the_stored_verdict_and_recomputes_it_for_older_reports(tmp_path: Path,
+                                                                             capsys: pytest.CaptureFixture) -> None:
+    from alignrun.evaluation import verdict
+
+    report = make_run(tmp_path / "a", effect=0.3, drift=0.2)
+    report["verdict"] = {"verdict": "not shown", "level": "info", "reason": "stored reason"}
+    write_json_atomic(tmp_path / "a" / "report.json", report)
+    [row] = as_json(capsys, [tmp_path / "a"])
+    assert (row["verdict"], row["verdict_reason"]) == ("not shown", "stored reason")  # read, not recomputed
+    del report["verdict"]  # a report written before the verdict was stored
+    write_json_atomic(tmp_path / "a" / "report.json", report)
+    [row] = as_json(capsys, [tmp_path / "a"])
+    per, cfg = report["evaluation"]["per_prompt"], BASE.evaluation
+    change = {who: metrics.paired_change(np.array(per[f"{key}_before"]), np.array(per[f"{key}_after"]),
+                                         cfg.bootstrap_resamples, 0) for who, key in (("reward_classifier", "harm"),
+                                                                                      ("judge", "judge"))}
+    assert row["verdict"] == verdict(change)["verdict"] == "improved"
+    assert row["verdict_reason"] == verdict(change)["reason"]
+
+
+def test_holm_adjusted_p_values_across_rows(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    from statsmodels.stats.multitest import multipletests
+
+    folders = _grid(tmp_path)
+    make_run(tmp_path / "null", effect=0.0, drift=0.1)  # no effect: a large p-value
+    folders.append(tmp_path / "null")
+    rows = as_json(capsys, folders)
+    raw = [r["p_value"] for r in rows]
+    # Holm 1979, reference statsmodels.stats.multitest.multipletests(method="holm")
+    assert [r["p_holm"] for r in rows] == pytest.approx(multipletests(raw, method="holm")[1].tolist(), rel=1e-12)
+    out, _ = run_compare(capsys, folders)
+    assert "adjusted for the 5 comparisons in this table (Holm 1979)" in out
+    assert "p (Holm)" in out.splitlines()[0]
 
 
 def test_pareto_set_hand_made(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
@@ -156,7 +234,7 @@ def test_formats(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     folders = _grid(tmp_path)
     rows = as_json(capsys, folders)
     required = {"run", "harm_before", "harm_after", "judge_before", "judge_after", "kl", "wall_s", "peak_rss_mb",
-                "pareto", "harm_rel_change", "harm_rel_ci", "wilcoxon_p", "kl.coef", "lora.rank"}
+                "pareto", "harm_rel_change", "harm_diff_ci", "p_value", "p_holm", "verdict", "kl.coef", "lora.rank"}
     assert len(rows) == 4 and all(required <= set(r) for r in rows)
     assert "run.seed" not in rows[0]  # only the config keys that differ become columns
     assert [(r["kl.coef"], r["lora.rank"]) for r in rows] == [(0.05, 2), (0.05, 8), (0.2, 2), (0.2, 8)]
@@ -164,7 +242,7 @@ def test_formats(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     out, err = run_compare(capsys, folders, "csv")
     parsed = list(csv.DictReader(io.StringIO(out)))
     assert [r["run"] for r in parsed] == [r["run"] for r in rows]
-    assert float(parsed[0]["harm_rel_ci_lo"]) == pytest.approx(rows[0]["harm_rel_ci"][0])
+    assert float(parsed[0]["harm_diff_ci_lo"]) == pytest.approx(rows[0]["harm_diff_ci"][0])
     assert "pareto" in err  # notes go to stderr so the CSV stays parseable
 
     out, _ = run_compare(capsys, folders, "md")
@@ -186,7 +264,10 @@ def test_same_prompts_pair_runs(tmp_path: Path, capsys: pytest.CaptureFixture) -
     first = np.array(json.loads((tmp_path / "a" / "report.json").read_text())["evaluation"]["per_prompt"]["harm_after"])
     second = np.array(json.loads((tmp_path / "b" / "report.json").read_text())["evaluation"]["per_prompt"]["harm_after"])
     assert rows[1]["vs_first_paired"] is True
-    assert rows[1]["vs_first_p"] == pytest.approx(stats.wilcoxon(second, first).pvalue, rel=1e-12)  # Wilcoxon 1945
+    # paired sign-flip permutation test of the mean difference, reference scipy.stats.permutation_test
+    ref = stats.permutation_test((second - first,), np.mean, permutation_type="samples", vectorized=True,
+                                 n_resamples=200, rng=np.random.default_rng(0))
+    assert rows[1]["vs_first_p"] == pytest.approx(ref.pvalue, rel=1e-12)
 
 
 def test_different_prompts_are_unpaired(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
@@ -198,8 +279,11 @@ def test_different_prompts_are_unpaired(tmp_path: Path, capsys: pytest.CaptureFi
     assert rows[0]["prompt_digest"] != rows[1]["prompt_digest"] and rows[1]["vs_first_paired"] is False
     first = np.array(json.loads((tmp_path / "a" / "report.json").read_text())["evaluation"]["per_prompt"]["harm_after"])
     second = np.array(json.loads((tmp_path / "b" / "report.json").read_text())["evaluation"]["per_prompt"]["harm_after"])
-    # Mann & Whitney 1947 rank-sum test, reference scipy.stats.mannwhitneyu
-    assert rows[1]["vs_first_p"] == pytest.approx(stats.mannwhitneyu(second, first).pvalue, rel=1e-12)
+    # permutation test of the difference in means between independent sets, reference scipy.stats.permutation_test
+    ref = stats.permutation_test((first, second), lambda a, b, axis: b.mean(axis) - a.mean(axis),
+                                 permutation_type="independent", vectorized=True, n_resamples=200,
+                                 rng=np.random.default_rng(0))
+    assert rows[1]["vs_first_p"] == pytest.approx(ref.pvalue, rel=1e-12)
 
 
 def test_plots_and_reports(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:

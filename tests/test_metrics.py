@@ -16,14 +16,18 @@ from hypothesis import strategies as st
 
 from alignrun.hf_metrics import NAMES, metric_path
 from alignrun.metrics import (
+    STUDENTIZED,
     bootstrap_ci,
     distinct_n,
     expected_max_harm,
     harm_probability,
     harm_rate,
+    holm,
+    mean_diff_ci,
     paired_change,
     pareto_front,
     perplexity,
+    seq_rep_n,
     share_empty,
     share_repeated,
     unpaired_change,
@@ -60,12 +64,28 @@ def test_score_matrix_shape_is_checked():
 
 
 def test_distinct_n_worked_example():
-    # Li et al. 2016, worked example from REFERENCES.md: distinct-1 = 3/7, distinct-2 = 3/5
+    # Li et al. 2016, worked example from REFERENCES.md: distinct-1 = 3/7 both ways; distinct-2 = 3/7 scaled by
+    # generated tokens (the paper's definition, the default) and 3/5 scaled by n-grams (common practice)
     assert distinct_n(WORKED_TEXTS, 1) == pytest.approx(3 / 7)
-    assert distinct_n(WORKED_TEXTS, 2) == pytest.approx(3 / 5)
-    # n-grams do not cross outputs: "x" + "y" has no bigram; no n-grams at all -> 0.0 (brief)
-    assert distinct_n(["x", "y"], 2) == 0.0
+    assert distinct_n(WORKED_TEXTS, 1, per="ngrams") == pytest.approx(3 / 7)
+    assert distinct_n(WORKED_TEXTS, 2) == pytest.approx(3 / 7)
+    assert distinct_n(WORKED_TEXTS, 2, per="tokens") == pytest.approx(3 / 7)
+    assert distinct_n(WORKED_TEXTS, 2, per="ngrams") == pytest.approx(3 / 5)
+    # n-grams do not cross outputs: "x" + "y" has no bigram but two tokens; nothing at all -> 0.0
+    assert distinct_n(["x", "y"], 2) == 0.0 and distinct_n(["x", "y"], 2, per="ngrams") == 0.0
     assert distinct_n([], 1) == 0.0
+    with pytest.raises(ValueError, match="per must be"):
+        distinct_n(WORKED_TEXTS, 2, per="words")
+
+
+def test_seq_rep_4_worked_example():
+    # Welleck et al. 2019, worked example from REFERENCES.md: "a b c a b c a b c" has 6 four-grams, 3 unique -> 0.5
+    assert seq_rep_n("a b c a b c a b c", 4) == pytest.approx(0.5)
+    # a loop of a 6-word phrase: 16 words, 13 four-grams, 1 + 5 unique -> 1 - 6/13 (counted by hand)
+    loop = "Drop the Tern folding bike at the Tern folding bike at the Tern folding bike at"
+    assert seq_rep_n(loop, 4) == pytest.approx(1 - 6 / 13)
+    assert seq_rep_n("thanks, your bike is ready for pick-up today", 4) == 0.0  # no repeated 4-gram
+    assert seq_rep_n("too short", 4) == 0.0  # no 4-gram at all
 
 
 def test_perplexity_hand_computation():
@@ -123,53 +143,136 @@ def _synthetic_pair(seed, n=60, shift=-0.1):
 def test_paired_change_matches_scipy_wilcoxon_and_definitions():
     before, after = _synthetic_pair(0)
     result = paired_change(before, after, n_resamples=500, seed=1)
-    # Wilcoxon 1945 signed-rank test, as computed by scipy.stats.wilcoxon
-    assert result["wilcoxon_p"] == pytest.approx(scipy.stats.wilcoxon(before, after).pvalue, rel=1e-12)
     assert result["mean_before"] == pytest.approx(before.mean())
     assert result["diff"] == pytest.approx(after.mean() - before.mean())
     assert result["rel_change"] == pytest.approx(after.mean() / before.mean() - 1)
-    # the paired diff CI is the bootstrap of the per-prompt differences (scipy.stats.bootstrap, same seed)
-    direct = scipy.stats.bootstrap(
-        (after - before,), np.mean, n_resamples=500, method="percentile", rng=np.random.default_rng(1)
-    ).confidence_interval
-    assert result["diff_ci"] == pytest.approx([direct.low, direct.high], rel=1e-12)
-    lo, hi = result["rel_ci"]
-    assert lo < result["rel_change"] < hi
-    assert result["paired"] is True
+    # the interval is the one mean_diff_ci gives for the per-prompt differences, with its method named
+    assert result["diff_ci"] == list(mean_diff_ci(after - before, 500, 1)[0])
+    assert result["interval"] == STUDENTIZED
+    # the test concerns the same quantity, the mean difference: a paired sign-flip permutation test, as
+    # scipy.stats.permutation_test computes it with the same seed (Fisher 1935, from memory)
+    direct = scipy.stats.permutation_test((after - before,), np.mean, permutation_type="samples", vectorized=True,
+                                          n_resamples=500, rng=np.random.default_rng(1))
+    assert result["p_value"] == pytest.approx(direct.pvalue, rel=1e-12)
+    assert result["paired"] is True and "mean difference" in result["test"]
     json.dumps(result, allow_nan=False)
 
 
-def test_paired_change_ci_brackets_the_true_difference():
-    # Efron 1979: a 95% interval should contain the true mean shift (-0.1 by construction) in most repetitions;
-    # for 40 repetitions at a true coverage >= 0.9, P(more than 8 misses) < 0.05 (binomial tail)
-    misses = 0
-    for seed in range(40):
-        before, after = _synthetic_pair(seed)
-        lo, hi = paired_change(before, after, n_resamples=500, seed=seed)["diff_ci"]
-        misses += not lo <= -0.1 <= hi
-    assert misses <= 8
-    assert scipy.stats.binom.sf(8, 40, 0.1) < 0.05
+def test_permutation_p_is_exact_for_few_prompts():
+    # with 4 prompts all 2**4 sign patterns are enumerated. By hand: |sum| >= 5.5 for the observed signs, for
+    # flipping only the -0.5 (sum 6.5) and for the negations of both: 4 of 16 patterns, p = 0.25
+    d = np.array([1.0, 2.0, -0.5, 3.0])
+    signs = np.array(np.meshgrid(*[[1, -1]] * 4)).reshape(4, -1).T
+    by_hand = np.mean(np.abs((signs * d).mean(axis=1)) >= abs(d.mean()) - 1e-12)
+    assert by_hand == 0.25
+    assert paired_change(np.zeros(4), d)["p_value"] == pytest.approx(by_hand)
+
+
+def test_interval_and_test_agree_where_wilcoxon_did_not():
+    # The issue's constructed case: 18 of 24 prompts slightly worse, 6 much better. The mean falls, the median
+    # difference rises; Wilcoxon (a different quantity) disagrees with the mean's interval, the permutation test
+    # of the mean does not: both exclude "no change" together.
+    d = np.array([0.02] * 18 + [-0.22] * 6) + np.linspace(-0.005, 0.005, 24)
+    result = paired_change(np.full(24, 0.5), 0.5 + d, n_resamples=2000, seed=0)
+    lo, hi = result["diff_ci"]
+    assert hi < 0 and result["p_value"] < 0.05
+    assert scipy.stats.wilcoxon(d).pvalue > 0.05  # the signed-rank test sees mostly positive differences
+
+
+# Coverage of the paired interval with few prompts (the sweep demo uses 24), on constructed data: per-prompt
+# differences in mean harm over k = 4 samples, where a quarter of the prompts provoke harm (before ~ Beta(5, 2))
+# and training halves it, the rest stay benign (Beta(1, 9)) and unchanged, plus sampling noise. The true mean
+# difference is estimated once from 200,000 prompts. 1000 repetitions give a standard error of about 0.007 on
+# the measured coverage; nominal 0.95 must measure >= 0.93. A second case has normal differences, where the
+# few-prompt t distribution matters most.
+def _mixed_diffs(rng: np.random.Generator, n: int) -> np.ndarray:
+    provoked = rng.random(n) < 0.25
+    before = np.where(provoked[:, None], rng.beta(5, 2, size=(n, 4)), rng.beta(1, 9, size=(n, 4)))
+    after = np.where(provoked[:, None], 0.5 * before, before) + rng.normal(0, 0.03, size=(n, 4))
+    return np.clip(after, 0, 1).mean(axis=1) - before.mean(axis=1)
+
+
+def _normal_diffs(rng: np.random.Generator, n: int) -> np.ndarray:
+    return rng.normal(-0.1, 0.2, n)
+
+
+def _coverage(interval, diffs) -> float:
+    truth = diffs(np.random.default_rng(12345), 200_000).mean()
+    hits = 0
+    for seed in range(1000):
+        lo, hi = interval(diffs(np.random.default_rng(seed), 24), seed)
+        hits += lo <= truth <= hi
+    return hits / 1000
+
+
+@pytest.mark.parametrize("diffs", [_mixed_diffs, _normal_diffs])
+def test_paired_interval_holds_its_level_with_24_prompts(diffs):
+    assert _coverage(lambda d, seed: mean_diff_ci(d, n_resamples=999, seed=seed)[0], diffs) >= 0.93
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize(("method", "diffs"), [("percentile", _mixed_diffs), ("BCa", _normal_diffs)])
+def test_other_bootstrap_intervals_under_cover_on_the_same_data(method, diffs):
+    # the neighbouring cases, and why bootstrap-t: Efron 1979 percentile and Efron 1987 BCa intervals
+    # (scipy.stats.bootstrap) measure below 0.93 on one of the same constructed data sets (0.918 and 0.925 here)
+    def scipy_interval(d, seed):
+        ci = scipy.stats.bootstrap((d,), np.mean, n_resamples=999, method=method,
+                                   rng=np.random.default_rng(seed)).confidence_interval
+        return ci.low, ci.high
+    assert _coverage(scipy_interval, diffs) < 0.93
+
+
+def test_studentized_interval_by_hand():
+    # bootstrap-t (Efron & Tibshirani 1993, ch. 12): the same resampled prompt indices, computed directly
+    d = np.random.default_rng(3).normal(-0.1, 0.2, 15)
+    idx = np.random.default_rng(9).integers(0, 15, size=(400, 15))
+    t = (d[idx].mean(1) - d.mean()) / (d[idx].std(1, ddof=1) / np.sqrt(15))
+    se = d.std(ddof=1) / np.sqrt(15)
+    q_lo, q_hi = np.quantile(t, [0.05, 0.95])
+    (lo, hi), method = mean_diff_ci(d, n_resamples=400, seed=9, level=0.9)
+    assert (lo, hi) == pytest.approx((d.mean() - q_hi * se, d.mean() - q_lo * se), rel=1e-12)
+    assert method == STUDENTIZED
 
 
 def test_paired_change_undefined_parts_are_none():
     zeros = np.zeros(5)
     same = paired_change(zeros, zeros)
-    assert same["wilcoxon_p"] is None and same["rel_change"] is None and same["rel_ci"] is None
-    assert same["diff_ci"] == [0.0, 0.0]
-    # the mean before is 0.2, but many resamples have a zero denominator: the ratio interval is undefined
+    assert same["p_value"] is None and same["rel_change"] is None
+    assert same["diff_ci"] == [0.0, 0.0] and same["interval"].startswith("none")
+    # the mean before is 0.2 and after 0: a relative change of -100%
     mostly_zero = paired_change(np.array([0, 0, 0, 0, 1.0]), zeros)
-    assert mostly_zero["rel_change"] == -1.0 and mostly_zero["rel_ci"] is None
+    assert mostly_zero["rel_change"] == -1.0
     json.dumps(mostly_zero, allow_nan=False)
+    # 23 of 24 prompts unchanged: most resamples have no spread, so bootstrap-t is undefined and the percentile
+    # interval is used instead, named as such
+    sparse = paired_change(np.zeros(24), np.array([0.0] * 23 + [-0.5]), n_resamples=500)
+    assert sparse["interval"].startswith("percentile") and sparse["diff_ci"][0] <= sparse["diff"] <= 0.0
     with pytest.raises(ValueError, match="same prompts"):
         paired_change(np.ones(3), np.ones(4))
+
+
+def test_holm_worked_example_and_statsmodels():
+    # Holm 1979, worked example from REFERENCES.md: p = [0.01, 0.04, 0.03] -> [0.03, 0.06, 0.06]
+    assert holm([0.01, 0.04, 0.03]) == pytest.approx([0.03, 0.06, 0.06])
+    # statsmodels.stats.multitest.multipletests(method="holm") on many p-values, ties and values near 1 included
+    from statsmodels.stats.multitest import multipletests
+
+    p = np.random.default_rng(0).uniform(0, 0.2, 9).tolist() + [0.05, 0.05, 0.9]
+    assert holm(p) == pytest.approx(multipletests(p, method="holm")[1].tolist(), rel=1e-12)
+    # None (no test possible) is left out of the count m
+    assert holm([0.02, None, 0.04]) == pytest.approx([0.04, None, 0.04])
+    assert holm([]) == []
 
 
 def test_unpaired_change_matches_scipy():
     rng = np.random.default_rng(5)
     before, after = rng.uniform(0.2, 0.8, 30), rng.uniform(0.1, 0.6, 45)
     result = unpaired_change(before, after, n_resamples=500, seed=2)
-    # Mann & Whitney 1947 rank-sum test, as computed by scipy.stats.mannwhitneyu (two-sided)
-    assert result["mannwhitney_p"] == pytest.approx(scipy.stats.mannwhitneyu(after, before).pvalue, rel=1e-12)
+    # a permutation test of the same difference in means, as scipy.stats.permutation_test computes it
+    direct_p = scipy.stats.permutation_test((before, after), lambda b, a, axis: a.mean(axis) - b.mean(axis),
+                                            permutation_type="independent", vectorized=True, n_resamples=500,
+                                            rng=np.random.default_rng(2)).pvalue
+    assert result["p_value"] == pytest.approx(direct_p, rel=1e-12)
     # independent resampling of the two sets: scipy.stats.bootstrap with two samples, same seed
     direct = scipy.stats.bootstrap(
         (before, after),
@@ -180,8 +283,7 @@ def test_unpaired_change_matches_scipy():
     ).confidence_interval
     assert result["diff_ci"] == pytest.approx([direct.low, direct.high], rel=1e-12)
     assert result["paired"] is False
-    paired_keys = set(paired_change(before[:5], after[:5])) - {"wilcoxon_p"}
-    assert set(result) - {"mannwhitney_p"} == paired_keys
+    assert set(result) == set(paired_change(before[:5], after[:5]))
     json.dumps(result, allow_nan=False)
 
 
@@ -235,6 +337,7 @@ print(json.dumps({
     "rate": load("harm_rate").compute(predictions=scores),
     "d1": load("distinct_n").compute(predictions=texts),
     "d2": load("distinct_n").compute(predictions=texts, n=2),
+    "d2n": load("distinct_n").compute(predictions=texts, n=2, per="ngrams"),
 }))
 """
 
@@ -266,8 +369,9 @@ def test_evaluate_modules_load_offline_and_match(tmp_path):
     assert got["emt"] == {"expected_max_harm": pytest.approx(expected_max_harm(np.array(scores)))}
     assert got["prob"] == {"harm_probability": pytest.approx(harm_probability(np.array(scores), 0.3))}
     assert got["rate"] == {"harm_rate": pytest.approx(harm_rate(np.array(scores)))}
-    assert got["d1"] == {"distinct_1": pytest.approx(distinct_n(texts, 1))}
-    assert got["d2"] == {"distinct_2": pytest.approx(distinct_n(texts, 2))}
+    assert got["d1"] == {"distinct_1_per_token": pytest.approx(distinct_n(texts, 1))}
+    assert got["d2"] == {"distinct_2_per_token": pytest.approx(distinct_n(texts, 2, per="tokens"))}
+    assert got["d2n"] == {"distinct_2_per_ngram": pytest.approx(distinct_n(texts, 2, per="ngrams"))}
 
 
 def test_metric_path_names_the_script_folders():
@@ -275,3 +379,22 @@ def test_metric_path_names_the_script_folders():
         assert (Path(metric_path(name)) / f"{name}.py").is_file()
     with pytest.raises(ValueError, match="unknown metric"):
         metric_path("accuracy")
+
+
+@pytest.mark.slow
+def test_holm_keeps_a_null_sweep_honest():
+    # The issue's measurement: a sweep of 8 runs x 24 prompts where training changed nothing gives at least one
+    # raw p < 0.05 in about a third of sweeps. Holm 1979 bounds the chance of any false finding by 0.05 (the
+    # family-wise error rate); 200 simulated sweeps give a standard error of about 0.015 on the measured rate.
+    raw_hits = holm_hits = 0
+    for sweep in range(200):
+        rng = np.random.default_rng([7, sweep])
+        p = []
+        for _ in range(8):
+            before = rng.beta(2, 3, size=(24, 4)).mean(axis=1)
+            after = rng.beta(2, 3, size=(24, 4)).mean(axis=1)  # the same distribution: no effect
+            p.append(paired_change(before, after, n_resamples=999, seed=sweep)["p_value"])
+        raw_hits += min(p) < 0.05
+        holm_hits += min(holm(p)) < 0.05
+    assert holm_hits / 200 <= 0.08
+    assert raw_hits / 200 >= 0.2  # the neighbouring case: unadjusted p-values find "effects" in a null sweep
