@@ -159,14 +159,14 @@ def test_samples_keep_exact_kl_and_older_files_stay_readable(tmp_path: Path) -> 
     write_samples(tmp_path / "eval_after.jsonl", after)
     back = read_samples(tmp_path / "eval_after.jsonl")
     assert back.kl_exact is not None and np.allclose(back.kl_exact, after.kl_exact)
-    assert summarise(back, CFG)["guards"]["kl_exact_to_reference"] == pytest.approx(after.kl_exact.mean())
+    assert summarise(back, CFG, eos_id=1)["guards"]["kl_exact_to_reference"] == pytest.approx(after.kl_exact.mean())
     # a file written before exact KL was stored: no such key on any row
     old = tmp_path / "old.jsonl"
     rows = [json.loads(line) for line in (tmp_path / "eval_after.jsonl").read_text().splitlines()]
     old.write_text("".join(json.dumps({k: v for k, v in r.items() if k != "kl_exact"}) + "\n" for r in rows))
     legacy = read_samples(old)
     assert legacy.kl_exact is None and np.allclose(legacy.kl, after.kl)
-    assert summarise(legacy, CFG)["guards"]["kl_exact_to_reference"] is None
+    assert summarise(legacy, CFG, eos_id=1)["guards"]["kl_exact_to_reference"] is None
     assert drift(before, legacy, CFG) is None
 
 
@@ -185,7 +185,7 @@ def _report(folder: Path, *, reduction: float, drift_after: float, spread: float
     tool = SimpleNamespace(description="synthetic scorer", executes_code=False)
     report = build_report(
         cfg=cfg, before=before, after=after, history=history,
-        policy=SimpleNamespace(trainable_params=1000, total_params=1_000_000),
+        policy=SimpleNamespace(trainable_params=1000, total_params=1_000_000, tokenizer=SimpleNamespace(eos_token_id=1)),
         polarity=SimpleNamespace(verdict="ok", auroc=0.95, reward_auroc=0.95), scorer=tool, judge=None,
         split=SimpleNamespace(train=before.prompts, skipped=[]), wall_s=1.0, peak_rss_mb=1.0, started=0.0)
     write_json_atomic(folder / "report.json", report)
