@@ -19,7 +19,7 @@ import torch
 from accelerate import Accelerator
 from trl.trainer.utils import entropy_from_logits, selective_log_softmax
 
-from alignrun import evaluation, ppo
+from alignrun import evaluation, ppo, tracking
 from alignrun.config import Experiment, load_config, to_toml
 from alignrun.data import load_prompts
 from alignrun.errors import UserError
@@ -215,9 +215,9 @@ def run_experiment(cfg: Experiment, out: Path, *, resume: bool = False, force: b
     if resume and not (out / "checkpoint" / "checkpoint.json").exists() and not (out / "eval_before.jsonl").exists():
         raise UserError(f"{out}: nothing to resume (no checkpoint/ and no eval_before.jsonl: the run stopped before "
                         "training); delete the folder or choose another --out for a new run")
-    accelerator = Accelerator(cpu=pick_device(cfg.base).type == "cpu")
+    accelerator = Accelerator(cpu=pick_device(cfg.base).type == "cpu", **tracking.accelerator_options(cfg.run))
     main = accelerator.is_main_process
-    with folder if main else _NoLock():
+    with folder if main else _NoLock(), tracking.trackers(accelerator, cfg, out):
         return _run_locked(cfg, out, folder, accelerator, main, resume, force, quiet)
 
 
@@ -293,6 +293,7 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                                         f"are kept in {out}; lower ppo.learning_rate or check the reward backend") from None
                     step += 1
                     history.append(row)
+                    tracking.log_step(accelerator, row)
                     if main:
                         log.write(json.dumps(row) + "\n")
                         log.flush()
@@ -325,6 +326,7 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                                 f"{step}); fix this, then write the report with: alignrun run CONFIG --resume {out}",
                                 exc.exit_code) from None
             folder.set_status("finished", step=step)
+            tracking.log_summary(accelerator, report)
         accelerator.wait_for_everyone()
         return report
     except KeyboardInterrupt:
