@@ -19,7 +19,7 @@ import torch
 from accelerate import Accelerator
 from trl.trainer.utils import entropy_from_logits, selective_log_softmax
 
-from alignrun import evaluation, ppo, tracking
+from alignrun import evaluation, html_report, ppo, tracking
 from alignrun.config import Experiment, load_config, to_toml
 from alignrun.data import load_prompts
 from alignrun.errors import UserError
@@ -321,6 +321,7 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                                   wall_s=time.time() - started, peak_rss_mb=peak_rss_mb(), started=started)
             try:
                 write_report(out, report, before, after)
+                html_report.write_run_html(out)
             except UserError as exc:
                 raise UserError(f"{exc}\n  training finished and is kept in {out} (adapter/, checkpoint/ at step "
                                 f"{step}); fix this, then write the report with: alignrun run CONFIG --resume {out}",
