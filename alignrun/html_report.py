@@ -149,11 +149,10 @@ def _change_rows(change: Any) -> list[list[str]]:
         if not isinstance(c, dict):
             continue
         rel = c.get("rel_change")
-        rel_ci = c.get("rel_ci")
+        rel_ci = c["rel_ci"] if _interval(c.get("rel_ci")) else None
         rows.append([_esc(who.replace("_", " ")), f'{_value(c.get("diff"))} {_interval(c.get("diff_ci"))}',
                      (MISSING if not isinstance(rel, (int, float)) else f"{100 * rel:+.0f}%")
-                     + (f' <span class="ci">[{100 * rel_ci[0]:+.0f}, {100 * rel_ci[1]:+.0f}]%</span>'
-                        if _interval(rel_ci) else ""),
+                     + (f' <span class="ci">[{100 * rel_ci[0]:+.0f}, {100 * rel_ci[1]:+.0f}]%</span>' if rel_ci else ""),
                      _value(c.get("wilcoxon_p"))])
     return rows
 
