@@ -37,7 +37,7 @@ class EvalResult:
 
 
 def _generate(policy: Policy, prompts: list[str], cfg: Experiment, device: torch.device,
-              do_sample: bool) -> tuple[list[str], list[list[int]], np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+              do_sample: bool, bar: Any = None) -> tuple[list[str], list[list[int]], np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     tok = policy.tokenizer
     texts: list[str] = []
     ids_out: list[list[int]] = []
@@ -57,16 +57,19 @@ def _generate(policy: Policy, prompts: list[str], cfg: Experiment, device: torch
         ntok.append(m.sum(1))
         texts.extend(t.strip() for t in tok.batch_decode(resp, skip_special_tokens=True))
         ids_out.extend(row[: int(n)].tolist() for row, n in zip(resp, m.sum(1)))
+        if bar is not None:
+            bar.update(len(resp))
     cat = lambda xs: torch.cat(xs).float().cpu().numpy()  # noqa: E731
     return texts, ids_out, cat(lp), cat(kl), cat(nll), cat(ntok)
 
 
 def evaluate_policy(policy: Policy, prompts: list[str], scorer: Any, judge: Any, cfg: Experiment,
-                    device: torch.device) -> EvalResult:
+                    device: torch.device, bar: Any = None) -> EvalResult:
+    """k sampled and one greedy reply per prompt, scored by both classifiers; `bar` (tqdm) counts replies."""
     n, k = len(prompts), cfg.evaluation.samples_per_prompt
     flat = [p for p in prompts for _ in range(k)]
-    texts, ids, lp, kl, nll, ntok = _generate(policy, flat, cfg, device, do_sample=True)
-    greedy, *_ = _generate(policy, prompts, cfg, device, do_sample=False)
+    texts, ids, lp, kl, nll, ntok = _generate(policy, flat, cfg, device, do_sample=True, bar=bar)
+    greedy, *_ = _generate(policy, prompts, cfg, device, do_sample=False, bar=bar)
     harm = scorer.score(texts + greedy).harm
     judged = judge.score(texts + greedy).harm if judge is not None else None
     shape = (n, k)
