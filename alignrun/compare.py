@@ -25,7 +25,7 @@ from alignrun.errors import UserError
 from alignrun.report import CAUTIONS, load_report, read_json, write_text_atomic
 from alignrun.sweep import flatten, read_index
 
-NOT_SHOWN = {"run.name", "run.out", "base.threads"}  # differ between runs without changing what they measure
+NOT_SHOWN = {"run.name", "run.out", "run.trackers", "run.tracker_dir", "base.threads"}  # differ between runs without changing what they measure
 REQUIRED = ("run.wall_s", "run.peak_rss_mb", "config.evaluation.bootstrap_resamples", "config.run.seed",
             "training.final_kl", "evaluation.prompt_digest", "evaluation.change.reward_classifier",
             "evaluation.before.reward_classifier.mean", "evaluation.after.reward_classifier.mean",
