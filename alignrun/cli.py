@@ -6,6 +6,7 @@ import argparse
 import sys
 from collections.abc import Sequence
 
+from alignrun import console
 from alignrun.errors import UserError
 
 
@@ -121,6 +122,7 @@ def _dispatch(args: argparse.Namespace) -> int:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    console.setup(args.debug)
     try:
         return _dispatch(args)
     except UserError as exc:

@@ -10,7 +10,6 @@ same held-out prompts), and the Pareto set of harm reduction versus drift, judge
 from __future__ import annotations
 
 import csv
-import html
 import io
 import json
 import math
@@ -27,7 +26,7 @@ from alignrun.errors import UserError
 from alignrun.report import CAUTIONS, load_report, num, read_json, write_text_atomic
 from alignrun.sweep import flatten, read_index
 
-NOT_SHOWN = {"run.name", "run.out", "base.threads"}  # differ between runs without changing what they measure
+NOT_SHOWN = {"run.name", "run.out", "run.trackers", "run.tracker_dir", "base.threads"}  # differ between runs without changing what they measure
 REQUIRED = ("run.wall_s", "run.peak_rss_mb", "config.evaluation.bootstrap_resamples", "config.run.seed",
             "training.final_kl", "evaluation.prompt_digest", "evaluation.change.reward_classifier",
             "evaluation.before.reward_classifier.mean", "evaluation.after.reward_classifier.mean",
@@ -511,33 +510,17 @@ def _plot_heatmap(rows: list[dict[str, Any]], axes: tuple[str, str], path: Path)
 # ---------------------------------------------------------------- report file
 
 def write_report_file(path: Path, cols: list[tuple[str, list[str]]], notes: list[str], plots: list[Path]) -> None:
+    """The Markdown report (the HTML one is alignrun.html_report.write_comparison)."""
     suffix = path.suffix.lower()
-    if suffix not in (".md", ".html", ".htm"):
+    if suffix != ".md":
         raise UserError(f"--report {path}: unknown report type '{suffix or '(none)'}'; use a .md or .html file name")
     links = [os.path.relpath(p.resolve(), path.resolve().parent) for p in plots]
-    if suffix == ".md":
-        lines = ["# Run comparison", "", render_markdown_table(cols), "", "## Notes", ""]
-        lines += [f"- {n}" for n in notes]
-        if links:
-            lines += ["", "## Plots", ""] + [f"![{Path(link).stem}]({link})" for link in links]
-        lines += ["", "## Limits and cautions", ""] + [f"- {c}" for c in CAUTIONS]
-        text = "\n".join(lines) + "\n"
-    else:
-        esc = html.escape
-        head = "".join(f"<th>{esc(t)}</th>" for t, _ in cols)
-        body = "".join("<tr>" + "".join(f"<td>{esc(cells[i])}</td>" for _, cells in cols) + "</tr>\n"
-                       for i in range(len(cols[0][1])))
-        items = lambda xs: "<ul>" + "".join(f"<li>{esc(x)}</li>" for x in xs) + "</ul>"  # noqa: E731
-        images = "".join(f'<p><img src="{esc(link)}" alt="{esc(Path(link).stem)}"></p>' for link in links)
-        text = (
-            "<!doctype html>\n<html><head><meta charset=\"utf-8\"><title>Run comparison</title>"
-            "<style>body{font-family:sans-serif;margin:2em}table{border-collapse:collapse}"
-            "td,th{border:1px solid #bbb;padding:3px 8px;text-align:left}</style></head><body>\n"
-            f"<h1>Run comparison</h1>\n<table><tr>{head}</tr>\n{body}</table>\n<h2>Notes</h2>{items(notes)}\n"
-            + (f"<h2>Plots</h2>{images}\n" if images else "")
-            + f"<h2>Limits and cautions</h2>{items(CAUTIONS)}\n</body></html>\n"
-        )
-    write_text_atomic(path, text)
+    lines = ["# Run comparison", "", render_markdown_table(cols), "", "## Notes", ""]
+    lines += [f"- {n}" for n in notes]
+    if links:
+        lines += ["", "## Plots", ""] + [f"![{Path(link).stem}]({link})" for link in links]
+    lines += ["", "## Limits and cautions", ""] + [f"- {c}" for c in CAUTIONS]
+    write_text_atomic(path, "\n".join(lines) + "\n")
 
 
 # ---------------------------------------------------------------- the command
@@ -559,7 +542,12 @@ def compare_cli(paths: list[str], *, fmt: str, plot_dir: str | None, report: str
     plots = write_plots(rows, varying, Path(plot_dir)) if plot_dir else []
     if plots:
         print(f"plots: {', '.join(str(p) for p in plots)}", file=info)
-    if report:
+    if report and Path(report).suffix.lower() in (".html", ".htm"):
+        from alignrun.html_report import write_comparison
+
+        write_comparison(Path(report), runs, cols, notes, rows, varying)
+        print(f"report: {report}", file=info)
+    elif report:
         write_report_file(Path(report), cols, notes, plots)
         print(f"report: {report}", file=info)
     return 0

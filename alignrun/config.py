@@ -183,6 +183,11 @@ class RunSection(Section):
     out: str | None = Field(None, description="run folder; default runs/<name> under the working folder")
     seed: int = Field(0, ge=0)
     checkpoint_every: int = Field(0, ge=0, description="steps between checkpoints; 0 saves only on exit")
+    trackers: list[Literal["tensorboard", "mlflow", "wandb", "trackio", "comet_ml", "aim", "clearml", "dvclive",
+                           "swanlab"]] = Field(
+        default_factory=list, description="experiment trackers to log to through accelerate, e.g. [\"tensorboard\"]")
+    tracker_dir: str | None = Field(None, description="tracker files (TensorBoard events, MLflow file store); "
+                                    "default trackers/ under the working folder")
 
 
 class SweepSection(Section):
@@ -212,7 +217,7 @@ def _largest_divisor(n: int, at_most: int) -> int:
 
 
 # Keys whose values are file paths (always resolved) or model sources (resolved when they look like paths).
-PATH_KEYS = {"data.prompts", "data.heldout", "reward.probes", "run.out", "sweep.out"}
+PATH_KEYS = {"data.prompts", "data.heldout", "reward.probes", "run.out", "run.tracker_dir", "sweep.out"}
 SOURCE_KEYS = {"base.model", "reward.source", "evaluation.judge.source"}
 
 

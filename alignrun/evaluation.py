@@ -39,10 +39,11 @@ class EvalResult:
 
 @torch.no_grad()
 def _generate(policy: Policy, prompts: list[str], cfg: Experiment, device: torch.device,
-              do_sample: bool) -> tuple[list[str], list[list[int]], dict[str, np.ndarray]]:
+              do_sample: bool, bar: Any = None) -> tuple[list[str], list[list[int]], dict[str, np.ndarray]]:
     """Replies and, per reply, sums over its tokens of: policy log-prob, k1 (log pi - log pi_ref), the exact KL
     of the next-token distributions, reference NLL, and the token count. Both models are run teacher-forced
-    on the sampled replies (reusing the frozen encoder output), so their full next-token distributions line up."""
+    on the sampled replies (reusing the frozen encoder output), so their full next-token distributions line up;
+    `bar` (tqdm) counts replies."""
     tok = policy.tokenizer
     texts: list[str] = []
     ids_out: list[list[int]] = []
@@ -69,15 +70,18 @@ def _generate(policy: Policy, prompts: list[str], cfg: Experiment, device: torch
             sums[key].append((value * m).sum(1))
         texts.extend(t.strip() for t in tok.batch_decode(resp, skip_special_tokens=True))
         ids_out.extend(row[: int(n)].tolist() for row, n in zip(resp, m.sum(1)))
+        if bar is not None:
+            bar.update(len(resp))
     return texts, ids_out, {k: torch.cat(v).float().cpu().numpy() for k, v in sums.items()}
 
 
 def evaluate_policy(policy: Policy, prompts: list[str], scorer: Any, judge: Any, cfg: Experiment,
-                    device: torch.device) -> EvalResult:
+                    device: torch.device, bar: Any = None) -> EvalResult:
+    """k sampled and one greedy reply per prompt, scored by both classifiers; `bar` (tqdm) counts replies."""
     n, k = len(prompts), cfg.evaluation.samples_per_prompt
     flat = [p for p in prompts for _ in range(k)]
-    texts, ids, per_reply = _generate(policy, flat, cfg, device, do_sample=True)
-    greedy, *_ = _generate(policy, prompts, cfg, device, do_sample=False)
+    texts, ids, per_reply = _generate(policy, flat, cfg, device, do_sample=True, bar=bar)
+    greedy, *_ = _generate(policy, prompts, cfg, device, do_sample=False, bar=bar)
     harm = scorer.score(texts + greedy).harm
     judged = judge.score(texts + greedy).harm if judge is not None else None
     shape = (n, k)

@@ -35,7 +35,7 @@ from alignrun.report import RunFolder, load_report, read_json, write_json_atomic
 SCHEMA = "alignrun.sweep/1"
 SET_BY_SWEEP = {"run.name": "each trial is named after its values", "run.out": "trials live in the sweep folder",
                 "run.seed": "list seeds in [sweep].seeds instead"}
-NOT_COMPARED = {"base.threads", "run.out"}  # may differ between re-runs of the same trial without changing it
+NOT_COMPARED = {"base.threads", "run.out", "run.trackers", "run.tracker_dir"}  # may differ between re-runs of a trial without changing it
 MAX_NAME = 120
 
 TrialRunner = Callable[[dict[str, Any], str, bool, bool], dict[str, Any]]

@@ -19,7 +19,7 @@ import torch
 from accelerate import Accelerator
 from trl.trainer.utils import entropy_from_logits, selective_log_softmax
 
-from alignrun import evaluation, ppo
+from alignrun import console, evaluation, html_report, ppo, tracking
 from alignrun.config import Experiment, load_config, to_toml
 from alignrun.data import load_prompts
 from alignrun.errors import UserError
@@ -215,9 +215,9 @@ def run_experiment(cfg: Experiment, out: Path, *, resume: bool = False, force: b
     if resume and not (out / "checkpoint" / "checkpoint.json").exists() and not (out / "eval_before.jsonl").exists():
         raise UserError(f"{out}: nothing to resume (no checkpoint/ and no eval_before.jsonl: the run stopped before "
                         "training); delete the folder or choose another --out for a new run")
-    accelerator = Accelerator(cpu=pick_device(cfg.base).type == "cpu")
+    accelerator = Accelerator(cpu=pick_device(cfg.base).type == "cpu", **tracking.accelerator_options(cfg.run))
     main = accelerator.is_main_process
-    with folder if main else _NoLock():
+    with folder if main else _NoLock(), tracking.trackers(accelerator, cfg, out):
         return _run_locked(cfg, out, folder, accelerator, main, resume, force, quiet)
 
 
@@ -229,20 +229,10 @@ class _NoLock:
         return None
 
 
-def _quiet_libraries() -> None:
-    import warnings
-
-    import transformers
-
-    transformers.utils.logging.set_verbosity_error()
-    transformers.utils.logging.disable_progress_bar()
-    warnings.filterwarnings("ignore", category=FutureWarning, module=r"transformers\..*")
-
-
 def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Accelerator, main: bool,
                 resume: bool, force: bool, quiet: bool) -> dict[str, Any]:
     started = time.time()
-    _quiet_libraries()
+    console.quiet_libraries()
     threads = set_threads(cfg.base.threads)
     device = accelerator.device
     seed_everything(cfg.run.seed)
@@ -277,7 +267,7 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
             _truncate_metrics(out / "metrics.jsonl", step)  # rows after the checkpoint (all, without one) are redone
         history = _read_metrics(out / "metrics.jsonl") if resume else []
         per_proc = cfg.ppo.prompts_per_step // accelerator.num_processes
-        bar = _progress(cfg.ppo.steps, step, quiet or not main)
+        bar = console.progress(cfg.ppo.steps, "ppo", "step", quiet or not main, initial=step)
         try:
             with _StopAtStepEnd(main) as stop, open(out / "metrics.jsonl", "a" if resume else "w", encoding="utf-8") as log:
                 while step < cfg.ppo.steps:
@@ -293,6 +283,7 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                                         f"are kept in {out}; lower ppo.learning_rate or check the reward backend") from None
                     step += 1
                     history.append(row)
+                    tracking.log_step(accelerator, row)
                     if main:
                         log.write(json.dumps(row) + "\n")
                         log.flush()
@@ -320,11 +311,13 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                                   wall_s=time.time() - started, peak_rss_mb=peak_rss_mb(), started=started)
             try:
                 write_report(out, report, before, after)
+                html_report.write_run_html(out)
             except UserError as exc:
                 raise UserError(f"{exc}\n  training finished and is kept in {out} (adapter/, checkpoint/ at step "
                                 f"{step}); fix this, then write the report with: alignrun run CONFIG --resume {out}",
                                 exc.exit_code) from None
             folder.set_status("finished", step=step)
+            tracking.log_summary(accelerator, report)
         accelerator.wait_for_everyone()
         return report
     except KeyboardInterrupt:
@@ -385,23 +378,15 @@ def _evaluate_once(path: Path, policy: Policy, prompts: list[str], scorer: Any, 
     """Held-out evaluation, reused from disk on resume (before) so a resumed run reports the same numbers."""
     if path.exists() and not fresh:
         return evaluation.read_samples(path)
-    if not quiet and main:
-        print(f"evaluating {label} training on {len(prompts)} held-out prompts "
-              f"x {cfg.evaluation.samples_per_prompt} samples ...", flush=True)
-    with torch.random.fork_rng(devices=[]):
+    replies = len(prompts) * (cfg.evaluation.samples_per_prompt + 1)  # k samples and one greedy reply each
+    with torch.random.fork_rng(devices=[]), console.progress(replies, f"evaluate {label}", "reply", quiet or not main) as bar:
         torch.manual_seed(cfg.run.seed + 7919)  # same sampling noise before and after: a paired design
         with autocast(cfg.base.precision, device):
-            result = evaluation.evaluate_policy(policy, prompts, scorer, judge, cfg, device)
+            result = evaluation.evaluate_policy(policy, prompts, scorer, judge, cfg, device, bar)
     if main:
         evaluation.write_samples(path, result)
         return evaluation.read_samples(path)  # the very numbers a resumed run reads back
     return result
-
-
-def _progress(total: int, done: int, disable: bool) -> Any:
-    from tqdm.auto import tqdm
-
-    return tqdm(total=total, initial=done, disable=disable, desc="ppo", unit="step", dynamic_ncols=True)
 
 
 def run_from_cli(config_path: str, overrides: list[str], *, out: str | None, resume: str | None,

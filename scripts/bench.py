@@ -66,7 +66,7 @@ from transformers import (  # noqa: E402
 )
 from trl.trainer.utils import selective_log_softmax  # noqa: E402
 
-from alignrun import ppo, resources, rollout, trainer  # noqa: E402
+from alignrun import budget, ppo, rollout, trainer  # noqa: E402
 from alignrun.config import Experiment  # noqa: E402
 from alignrun.models import Policy, autocast, build_policy, set_threads  # noqa: E402
 from alignrun.reward import load_scorer, reward_from_scores  # noqa: E402
@@ -470,7 +470,7 @@ def print_tables(results: dict[str, Any]) -> None:
         for variant, t in entry["time"].items():
             rss = entry.get("memory", {}).get(variant, {}).get("peak_rss_mb", float("nan"))
             print(f"{name:<7}{variant:<11}" + "".join(f"{t[p]:>10.2f}" for p in columns) + f"{rss:>9.0f}")
-    print("\nestimate (alignrun.resources.estimate, fp32) vs measured")
+    print("\nestimate (alignrun.budget.estimate, fp32) vs measured")
     print(f"{'shape':<7}{'params':>12}{'trainable':>11}{'est s':>8}{'meas s':>8}{'est MB':>8}{'meas MB':>9}"
           f"{'naive est':>10}{'naive MB':>9}")
     for name, entry in results["shapes"].items():
@@ -542,7 +542,7 @@ def main(argv: list[str] | None = None) -> int:
                   "memory_epochs": args.memory_epochs, "rounds": args.rounds, "threads": torch.get_num_threads(),
                   "omp_wait_policy": os.environ.get("OMP_WAIT_POLICY", "(unset)"), "torch": torch.__version__,
                   "platform": platform.platform(), "load_average_start": os.getloadavg()},
-        "fast_settings": resources.fast_settings(), "shapes": {},
+        "fast_settings": budget.fast_settings(), "shapes": {},
     }
 
     def log(message: str) -> None:
@@ -553,7 +553,7 @@ def main(argv: list[str] | None = None) -> int:
             log(f"{name}: building the model")
             model = build_model(SHAPES[name], Path(tmp) / name)
             entry: dict[str, Any] = {"shape": asdict(SHAPES[name]), "estimate": {
-                v: asdict(resources.estimate(variant_cfg(model, v))) for v in ("ours", "naive")}}
+                v: asdict(budget.estimate(variant_cfg(model, v))) for v in ("ours", "naive")}}
             if name == shapes[0]:  # the smallest shape asked for: tiny by default
                 log(f"{name}: precision check")
                 results["precision_check"], results["precision_check_shape"] = precision_check(model), name

@@ -302,7 +302,7 @@ def test_plots_and_reports(tmp_path: Path, capsys: pytest.CaptureFixture) -> Non
     run_compare(capsys, folders[:2], plot_dir=str(tmp_path / "two"), report=str(tmp_path / "cmp.html"))
     assert not (tmp_path / "two" / "kl_rank_heatmap.png").exists()  # one kl.coef value is not a grid
     page = (tmp_path / "cmp.html").read_text()
-    assert page.startswith("<!doctype html>") and "<table>" in page and '<img src="two/harm_vs_kl.png"' in page
+    assert page.startswith("<!doctype html>") and "<table>" in page and '<img src="data:image/png;base64,' in page
     assert "not a safety guarantee" in page
     with pytest.raises(UserError, match=r"\.txt.*use a \.md or \.html"):
         compare.compare_cli([str(folders[0])], fmt="table", plot_dir=None, report=str(tmp_path / "cmp.txt"))

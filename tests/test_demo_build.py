@@ -243,12 +243,12 @@ def cheap_trainers(monkeypatch: pytest.MonkeyPatch) -> Counter:
     """Replace the two training steps with cheap stand-ins that count their calls (tokenizer and data stay real)."""
     calls: Counter = Counter()
 
-    def base(out: Path, tokenizer_dir: Path, recipe: build.BaseRecipe, seed: int) -> dict[str, float]:
+    def base(out: Path, tokenizer_dir: Path, recipe: build.BaseRecipe, seed: int, quiet: bool) -> dict[str, float]:
         calls["base"] += 1
         build_tiny_seq2seq(out, "t5", tokenizer_dir, seed)
         return {}
 
-    def classifier(out: Path, recipe: build.ClassifierRecipe, seed: int) -> dict[str, float]:
+    def classifier(out: Path, recipe: build.ClassifierRecipe, seed: int, quiet: bool) -> dict[str, float]:
         calls["classifier"] += 1
         (out / "weights").write_text(str(seed))
         return {}

@@ -122,7 +122,7 @@ def test_end_to_end_run_writes_every_file_and_the_adapter_reloads(tmp_path: Path
     out = tmp_path / "run"
     report = run_experiment(cfg, out, quiet=True, force=True)
     for name in ("config.toml", "environment.json", "preflight.json", "status.json", "metrics.jsonl",
-                 "eval_before.jsonl", "eval_after.jsonl", "pairs.jsonl", "pairs.csv", "report.json", "report.md",
+                 "eval_before.jsonl", "eval_after.jsonl", "pairs.jsonl", "pairs.csv", "report.json", "report.md", "report.html",
                  "adapter/adapter_config.json", "adapter/adapter_model.safetensors", "adapter/value_head.safetensors"):
         assert (out / name).is_file(), name
     assert json.loads((out / "status.json").read_text())["state"] == "finished"

@@ -37,6 +37,7 @@ from transformers import (
     T5ForConditionalGeneration,
 )
 
+from alignrun.console import progress
 from alignrun.demo import scenario
 from alignrun.errors import UserError
 
@@ -99,7 +100,9 @@ class DataRecipe:
 
 
 def _log(message: str) -> None:
-    print(f"demo: {message}", file=sys.stderr, flush=True)
+    from tqdm.auto import tqdm
+
+    tqdm.write(f"demo: {message}", file=sys.stderr)  # above a progress bar, not through it
 
 
 # --- tokenizer --------------------------------------------------------------------------------------------
@@ -196,7 +199,7 @@ def _batches(lengths: Sequence[int], size: int, rng: random.Random, window: int 
         yield from batches
 
 
-def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int) -> dict[str, float]:
+def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int, quiet: bool = False) -> dict[str, float]:
     """Teacher-forced training of a small T5 on scenario pairs (a); saves model, tokenizer, generation config."""
     tokenizer = AutoTokenizer.from_pretrained(tokenizer_dir)
     pairs = scenario.base_pairs(recipe.pairs, seed, recipe.rude_share)
@@ -224,6 +227,7 @@ def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int) ->
          f"{len(pairs)} pairs, {recipe.steps} steps)")
     model.train()
     losses = []
+    bar = progress(recipe.steps, "base T5", "step", quiet)
     for step, idx in zip(range(recipe.steps), batches):
         mask, lab = enc.attention_mask[idx], labels[idx]
         keep_in, keep_out = int(mask.sum(1).max()), int(reply_tokens[idx].max())
@@ -237,8 +241,10 @@ def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int) ->
         optimizer.step()
         schedule.step()
         losses.append(loss.item())
+        bar.update(1)
         if (step + 1) % (recipe.steps // 4) == 0:
             _log(f"  base step {step + 1}/{recipe.steps}: loss {sum(losses[-50:]) / len(losses[-50:]):.3f}")
+    bar.close()
     model.eval()
     model.generation_config = _generation_config(PAD_ID, sample=True, max_new_tokens=recipe.max_reply_tokens)
     model.save_pretrained(out)
@@ -259,7 +265,7 @@ def _accuracy(model: BertForSequenceClassification, tokenizer: Any, texts: list[
     return correct / len(texts)
 
 
-def train_classifier(out: Path, recipe: ClassifierRecipe, seed: int) -> dict[str, float]:
+def train_classifier(out: Path, recipe: ClassifierRecipe, seed: int, quiet: bool = False) -> dict[str, float]:
     """A small BERT sequence classifier (labels civil/hostile) with its own tokenizer, trained on (d)."""
     examples = scenario.classifier_examples(recipe.examples, seed, recipe.hostile_share)
     texts, labels = [e.text for e in examples], [int(e.hostile) for e in examples]
@@ -279,12 +285,15 @@ def train_classifier(out: Path, recipe: ClassifierRecipe, seed: int) -> dict[str
     _log(f"training classifier ({sum(p.numel() for p in model.parameters()) / 1e6:.2f}M parameters, "
          f"{len(texts)} labelled replies, {steps} steps)")
     model.train()
+    bar = progress(steps, "classifier", "step", quiet)
     for _, idx in zip(range(steps), batches):
         enc = tokenizer([texts[i] for i in idx], padding=True, return_tensors="pt")
         loss = model(**enc, labels=target[idx]).loss
         optimizer.zero_grad()
         loss.backward()
         optimizer.step()
+        bar.update(1)
+    bar.close()
     model.eval()
     # Held-out accuracy on a fresh stream, leaving out any text that also occurs in the training set.
     seen = set(texts)
@@ -389,7 +398,7 @@ def _ensure(name: str, folder: Path, params: dict[str, Any], build: Callable[[Pa
         _log(f"{name}: up to date ({folder})")
 
 
-def build_demo(cache: Path | None = None, seed: int = 0) -> DemoPaths:
+def build_demo(cache: Path | None = None, seed: int = 0, quiet: bool = False) -> DemoPaths:
     """Build (or reuse) the demo tokenizer, base model, classifier and prompt files under cache."""
     from alignrun.config import cache_dir
 
@@ -420,10 +429,10 @@ def build_demo(cache: Path | None = None, seed: int = 0) -> DemoPaths:
         _ensure("prompt files", paths.prompts.parent, {"artefact": "data", "seed": seed, **asdict(data)},
                 lambda tmp: write_prompts(tmp, data, seed))
         _ensure("classifier", paths.classifier, {"artefact": "classifier", "seed": seed, **asdict(clf)},
-                lambda tmp: train_classifier(tmp, clf, seed))
+                lambda tmp: train_classifier(tmp, clf, seed, quiet))
         # The base depends on the tokenizer: its fingerprint is one of the base's parameters.
         _ensure("base model", paths.base, {"artefact": "base", "seed": seed, **asdict(base),
                                            "tokenizer": read_fingerprint(paths.tokenizer)},
-                lambda tmp: train_base(tmp, paths.tokenizer, base, seed))
+                lambda tmp: train_base(tmp, paths.tokenizer, base, seed, quiet))
     _log(f"ready in {time.perf_counter() - start:.1f} s")
     return paths

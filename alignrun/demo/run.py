@@ -21,7 +21,7 @@ def run_demo(out: str | None, quick: bool, quiet: bool, overrides: list[str]) ->
 
     if not DEMO_CONFIG.is_file():
         raise UserError(f"{DEMO_CONFIG}: the demo config is missing; run the demo from a checkout of the repository")
-    build_demo()
+    build_demo(quiet=quiet)
     cfg = load_config(DEMO_CONFIG, [*(QUICK if quick else []), *overrides])
     target = Path(out or cfg.run.out or Path("runs") / ("demo-quick" if quick else "demo"))
     report = run_experiment(cfg, target, quiet=quiet)
@@ -32,5 +32,5 @@ def run_demo(out: str | None, quick: bool, quiet: bool, overrides: list[str]) ->
     for p in sorted(changed, key=lambda p: p["harm_after"] - p["harm_before"])[:4]:
         print(f"\n  prompt: {p['prompt']}\n  before: {p['before']}  [harm {p['harm_before']:.2f}]"
               f"\n  after:  {p['after']}  [harm {p['harm_after']:.2f}]")
-    print(f"\nrun folder: {target}  (report.md for people, report.json for `alignrun compare`)")
+    print(f"\nrun folder: {target}  (report.html or report.md for people, report.json for `alignrun compare`)")
     return 0

@@ -9,7 +9,7 @@ import pytest
 import torch
 from transformers import T5Config
 
-from alignrun import resources
+from alignrun import budget
 from alignrun.config import Experiment
 
 
@@ -34,29 +34,29 @@ def t5_small_config(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 def test_weight_bytes_per_parameter():
     # Common practice (REFERENCES.md, Resources): 1e9 parameters ~ 4 GB in fp32, 2 GB in bf16, 1 GB in int8.
-    assert resources.weight_bytes(10**9, "fp32") == 4 * 10**9
-    assert resources.weight_bytes(10**9, "bf16") == 2 * 10**9
-    assert resources.weight_bytes(10**9, "int8") == 1 * 10**9
+    assert budget.weight_bytes(10**9, "fp32") == 4 * 10**9
+    assert budget.weight_bytes(10**9, "bf16") == 2 * 10**9
+    assert budget.weight_bytes(10**9, "int8") == 1 * 10**9
     with pytest.raises(ValueError, match="unknown dtype"):
-        resources.weight_bytes(10, "fp8")
+        budget.weight_bytes(10, "fp8")
 
 
 def test_adamw_state_and_gradient_bytes():
     # Kingma & Ba 2015: two fp32 moments = +8 bytes per trainable parameter; plus a 4-byte fp32 gradient
     # (common practice, REFERENCES.md). 294,912 LoRA parameters -> 3,538,944 bytes.
-    assert resources.optimizer_bytes(294_912) == 294_912 * (8 + 4) == 3_538_944
+    assert budget.optimizer_bytes(294_912) == 294_912 * (8 + 4) == 3_538_944
 
 
 def test_lora_count_t5_small_on_meta_device(t5_small_config: Path):
     # Hu et al. 2021, worked example in REFERENCES.md: 36 matrices of 512x512, r=8 -> 36 * 8 * 1024 = 294,912.
     cfg = _experiment(t5_small_config, lora={"rank": 8, "targets": ["q", "v"], "scope": "encoder-decoder"})
-    model = resources.meta_model(cfg)
+    model = budget.meta_model(cfg)
     assert all(p.device.type == "meta" for p in model.parameters())
-    assert resources.lora_param_count(model, ["q", "v"], 8) == 294_912
+    assert budget.lora_param_count(model, ["q", "v"], 8) == 294_912
     # the decoder alone: 6 self- and 6 cross-attention blocks -> 24 * 8 * 1024 = 196,608
-    assert resources.lora_param_count(model, ["q", "v"], 8, "decoder") == 196_608
-    assert resources.estimate(_experiment(t5_small_config, lora={"rank": 8})).lora_params == 196_608
-    est = resources.estimate(cfg)  # "auto" resolves to q, v for T5 as well
+    assert budget.lora_param_count(model, ["q", "v"], 8, "decoder") == 196_608
+    assert budget.estimate(_experiment(t5_small_config, lora={"rank": 8})).lora_params == 196_608
+    est = budget.estimate(cfg)  # "auto" resolves to q, v for T5 as well
     assert est.lora_params == 294_912
     assert est.trainable_params == 294_912 + 512 + 1  # plus the value head's weight and bias
     # 60.5M parameters for the T5-small shape (REFERENCES.md): LoRA is about 0.49% of them
@@ -70,8 +70,8 @@ def test_forward_flop_parameters_by_hand(t5_small_config: Path):
     # feed-forward 512x2048 + 2048x512 and 2 layer-norm scales of 512; a decoder layer adds a cross-attention
     # block (4 more 512x512) and a third layer norm; each stack ends in a layer norm; the output projection
     # is 512 x 32128 (computed per decoder token even though it is tied to the input embedding).
-    model = resources.meta_model(_experiment(t5_small_config))
-    dims = resources.model_dims(model)
+    model = budget.meta_model(_experiment(t5_small_config))
+    dims = budget.model_dims(model)
     enc_layer = 4 * 512 * 512 + 2 * 512 * 2048 + 2 * 512
     dec_layer = 8 * 512 * 512 + 2 * 512 * 2048 + 3 * 512
     assert dims.enc_params == 6 * enc_layer + 512
@@ -79,8 +79,8 @@ def test_forward_flop_parameters_by_hand(t5_small_config: Path):
 
 
 def test_estimate_memory_adds_up_and_copy_mode_doubles_weights(t5_small_config: Path):
-    shared = resources.estimate(_experiment(t5_small_config))
-    copy = resources.estimate(_experiment(t5_small_config, reference={"mode": "copy"}))
+    shared = budget.estimate(_experiment(t5_small_config))
+    copy = budget.estimate(_experiment(t5_small_config, reference={"mode": "copy"}))
     mb = 1024 * 1024
     # fp32 weights at 4 bytes each (common practice); the copy keeps a second frozen base
     assert shared.weights_mb == pytest.approx((4 * shared.base_params + 4 * shared.trainable_params) / mb)
@@ -97,7 +97,7 @@ def test_estimate_counts_match_the_loaded_policy(tiny_models: dict[str, Path], s
 
     cfg = _experiment(tiny_models["t5"], lora={"rank": 4, "targets": "all-linear", "scope": scope},
                       base={"model": str(tiny_models["t5"]), "precision": "bf16"})
-    est = resources.estimate(cfg)
+    est = budget.estimate(cfg)
     policy = build_policy(cfg.base, cfg.lora, cfg.reference, torch.device("cpu"))
     # peft's own count of what it adapted, and the parameters of the real loaded model
     assert est.lora_params == policy.trainable_params
@@ -112,12 +112,12 @@ def test_bf16_weight_bytes_by_hand(t5_small_config: Path):
     # T5-small (Raffel et al. 2020): 6 encoder layers of 4 x 512x512 attention + 512x2048 + 2048x512 feed-forward,
     # 6 decoder layers with 8 x 512x512; the output projection is tied to the 32128 x 512 embedding, which stays
     # fp32 like the norms. 2 bytes per bf16 weight, 4 per fp32 weight (common practice).
-    model = resources.meta_model(_experiment(t5_small_config))
+    model = budget.meta_model(_experiment(t5_small_config))
     linear = 6 * (4 * 512 * 512 + 2 * 512 * 2048) + 6 * (8 * 512 * 512 + 2 * 512 * 2048)
     assert linear == 44_040_192
     total = sum(p.numel() for p in {id(p): p for p in model.parameters()}.values())
-    assert resources.base_weight_bytes(model, "fp32") == 4 * total
-    assert resources.base_weight_bytes(model, "bf16") == 2 * linear + 4 * (total - linear)
+    assert budget.base_weight_bytes(model, "fp32") == 4 * total
+    assert budget.base_weight_bytes(model, "bf16") == 2 * linear + 4 * (total - linear)
 
 
 def _available(mb: int) -> SimpleNamespace:
@@ -126,39 +126,39 @@ def _available(mb: int) -> SimpleNamespace:
 
 def test_memory_warning_when_available_memory_is_small(t5_small_config: Path,
                                                       monkeypatch: pytest.MonkeyPatch):
-    monkeypatch.setattr(resources.psutil, "virtual_memory", lambda: _available(100))
-    est = resources.estimate(_experiment(t5_small_config))
+    monkeypatch.setattr(budget.psutil, "virtual_memory", lambda: _available(100))
+    est = budget.estimate(_experiment(t5_small_config))
     assert est.available_mb == pytest.approx(100)
     assert est.warning is not None and "exceeds the 100 MB available" in est.warning
-    assert resources.describe(est)[-1].startswith("!! predicted peak memory")
-    monkeypatch.setattr(resources.psutil, "virtual_memory", lambda: _available(10**6))
-    assert resources.estimate(_experiment(t5_small_config)).warning is None
+    assert budget.describe(est)[-1].startswith("!! predicted peak memory")
+    monkeypatch.setattr(budget.psutil, "virtual_memory", lambda: _available(10**6))
+    assert budget.estimate(_experiment(t5_small_config)).warning is None
 
 
 def test_fast_settings_are_booleans_and_follow_the_cpu_flags(monkeypatch: pytest.MonkeyPatch, tmp_path: Path):
-    settings = resources.fast_settings()
+    settings = budget.fast_settings()
     assert all(isinstance(settings[key], bool) for key in ("bf16", "amx", "int8_dynamic"))
     cpuinfo = tmp_path / "cpuinfo"
     cpuinfo.write_text("processor\t: 0\nflags\t\t: fpu sse2 avx512f avx512_bf16\n\n"
                        "processor\t: 1\nflags\t\t: fpu\n")
-    assert {"avx512f", "avx512_bf16", "fpu"} <= resources.cpu_flags(cpuinfo)
-    assert resources.cpu_flags(tmp_path / "missing") == set()
-    monkeypatch.setattr(resources.torch.backends.cpu, "get_cpu_capability", lambda: "AVX512")
-    monkeypatch.setattr(resources, "cpu_flags", lambda: {"avx512f", "avx512_bf16"})
-    assert resources.fast_settings()["bf16"] is True
-    monkeypatch.setattr(resources, "cpu_flags", lambda: {"avx512f"})
-    assert resources.fast_settings()["bf16"] is False
-    assert resources.fast_settings()["recommended_precision"] == "fp32"
+    assert {"avx512f", "avx512_bf16", "fpu"} <= budget.cpu_flags(cpuinfo)
+    assert budget.cpu_flags(tmp_path / "missing") == set()
+    monkeypatch.setattr(budget.torch.backends.cpu, "get_cpu_capability", lambda: "AVX512")
+    monkeypatch.setattr(budget, "cpu_flags", lambda: {"avx512f", "avx512_bf16"})
+    assert budget.fast_settings()["bf16"] is True
+    monkeypatch.setattr(budget, "cpu_flags", lambda: {"avx512f"})
+    assert budget.fast_settings()["bf16"] is False
+    assert budget.fast_settings()["recommended_precision"] == "fp32"
 
 
 def test_bf16_is_suggested_only_where_it_pays():
     settings = {"bf16": True, "cpu_capability": "AVX512", "amx": False, "int8_dynamic": True,
                 "recommended_precision": "bf16"}
-    assert "try base.precision = \"bf16\"" in resources.describe_fast_settings(settings, "fp32", 60_000_000)
-    assert "try" not in resources.describe_fast_settings(settings, "fp32", 2_000_000)  # a tiny model gains nothing
-    assert "try" not in resources.describe_fast_settings(settings, "bf16", 60_000_000)
+    assert "try base.precision = \"bf16\"" in budget.describe_fast_settings(settings, "fp32", 60_000_000)
+    assert "try" not in budget.describe_fast_settings(settings, "fp32", 2_000_000)  # a tiny model gains nothing
+    assert "try" not in budget.describe_fast_settings(settings, "bf16", 60_000_000)
     without = {**settings, "bf16": False, "recommended_precision": "fp32"}
-    assert "try base.precision = \"fp32\"" in resources.describe_fast_settings(without, "bf16", 2_000_000)
+    assert "try base.precision = \"fp32\"" in budget.describe_fast_settings(without, "bf16", 2_000_000)
 
 
 def test_check_prints_the_estimate_and_the_fast_settings(tiny_models: dict[str, Path], tmp_path: Path,
@@ -171,7 +171,7 @@ def test_check_prints_the_estimate_and_the_fast_settings(tiny_models: dict[str, 
                       'source = "tests.tiny_classifiers:class_probabilities"\n')
     assert run_check(config, [], None) == 0
     printed = capsys.readouterr().out
-    est = resources.estimate(_experiment(tiny_models["t5"]))
+    est = budget.estimate(_experiment(tiny_models["t5"]))
     assert f"parameters: {est.total_params:,} total, {est.trainable_params:,} trainable" in printed
     assert "memory: predicted peak" in printed and "s per step" in printed
     assert "fast settings: bf16" in printed
