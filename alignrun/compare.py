@@ -23,7 +23,8 @@ import numpy as np
 
 from alignrun import metrics
 from alignrun.errors import UserError
-from alignrun.report import CAUTIONS, load_report, read_json, write_text_atomic
+from alignrun.report import CAUTIONS, load_report
+from alignrun.runfolder import read_json, write_text_atomic
 from alignrun.sweep import flatten, read_index
 
 NOT_SHOWN = {"run.name", "run.out", "base.threads"}  # differ between runs without changing what they measure

@@ -14,8 +14,8 @@ import torch
 from alignrun import metrics
 from alignrun.config import Experiment
 from alignrun.models import Policy
-from alignrun.report import write_jsonl_atomic
 from alignrun.rollout import encode_prompts, frozen_encoding, reference_logprobs, response_mask, sample
+from alignrun.runfolder import write_jsonl_atomic
 
 CHUNK = 64  # sequences per generation batch
 

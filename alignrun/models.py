@@ -25,7 +25,7 @@ from trl.trainer.utils import disable_dropout_in_model
 
 from alignrun.config import BaseSection, LoraSection, ReferenceSection
 from alignrun.errors import UserError
-from alignrun.report import replace_folder, staging_folder
+from alignrun.runfolder import replace_folder, staging_folder
 
 # Attention query/value projections per architecture family: LoRA's default placement (Hu et al. 2021, §4.2).
 QUERY_VALUE = {

@@ -23,9 +23,9 @@ from scipy.stats import rankdata
 
 from alignrun.config import RewardSection, load_config
 from alignrun.errors import UserError
-from alignrun.report import write_json_atomic
 from alignrun.resources import describe, describe_fast_settings, estimate, fast_settings
 from alignrun.reward import Scorer, describe_transform, load_scorer, reward_from_scores
+from alignrun.runfolder import write_json_atomic
 
 PROBE_ROW = '{"text": "...", "harmful": true} or {"text": "...", "harmful": false}'
 EXIT_POLARITY = 3

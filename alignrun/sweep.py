@@ -30,7 +30,8 @@ from pydantic import BaseModel
 
 from alignrun.config import Experiment, load_config, with_overrides
 from alignrun.errors import UserError
-from alignrun.report import RunFolder, load_report, read_json, write_json_atomic
+from alignrun.report import load_report
+from alignrun.runfolder import RunFolder, read_json, write_json_atomic
 
 SCHEMA = "alignrun.sweep/1"
 SET_BY_SWEEP = {"run.name": "each trial is named after its values", "run.out": "trials live in the sweep folder",

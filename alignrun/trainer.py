@@ -33,17 +33,10 @@ from alignrun.models import (
     set_threads,
 )
 from alignrun.preflight import require_polarity
-from alignrun.report import (
-    RunFolder,
-    build_report,
-    replace_folder,
-    staging_folder,
-    write_json_atomic,
-    write_report,
-    write_text_atomic,
-)
+from alignrun.report import build_report, write_report
 from alignrun.reward import load_scorer, reward_from_scores
 from alignrun.rollout import Rollout, rollout
+from alignrun.runfolder import RunFolder, replace_folder, staging_folder, write_json_atomic, write_text_atomic
 
 
 def peak_rss_mb() -> float:

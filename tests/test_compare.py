@@ -20,7 +20,8 @@ from alignrun import compare
 from alignrun.cli import main
 from alignrun.config import Experiment, with_overrides
 from alignrun.errors import UserError
-from alignrun.report import RunFolder, build_report, write_json_atomic
+from alignrun.report import build_report
+from alignrun.runfolder import RunFolder, write_json_atomic
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (RFC 2083), section 3.1
 WORDS = "thanks order bike repair today tomorrow shop parts wheel chain ugh seriously".split()

@@ -13,7 +13,7 @@ from transformers import AutoModelForSeq2SeqLM
 from alignrun.config import BaseSection, Experiment, LoraSection, ReferenceSection
 from alignrun.evaluation import alarms, evaluate_policy, summarise
 from alignrun.models import build_policy, export_merged, save_adapter
-from alignrun.report import write_text_atomic
+from alignrun.runfolder import write_text_atomic
 
 
 def _cfg(target: float | None = 2.0) -> Experiment:
