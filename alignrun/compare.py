@@ -24,7 +24,7 @@ import numpy as np
 from alignrun import metrics
 from alignrun.errors import UserError
 from alignrun.report import CAUTIONS, load_report
-from alignrun.runfolder import read_json, write_text_atomic
+from alignrun.runfolder import read_status, write_text_atomic
 from alignrun.sweep import flatten, read_index
 
 NOT_SHOWN = {"run.name", "run.out", "base.threads"}  # differ between runs without changing what they measure
@@ -60,9 +60,10 @@ def _read_run(folder: Path) -> dict[str, Any]:
     if not folder.exists():
         raise UserError(f"{folder}: no such folder (expected a run folder or a sweep folder)")
     if not (folder / "report.json").exists():
-        status = folder / "status.json"
-        if status.exists():
-            state = (read_json(status, "run status") or {}).get("state", "?")
+        status = read_status(folder)  # a run whose process is gone reads "dead", with a note
+        if status:
+            state = f"{status.get('state', '?')}, step {status.get('step', '?')}" + (
+                f"; {status['note']}" if status.get("note") else "")
             raise UserError(f"{folder}: the run has no report.json (status: {state}); only finished runs can be compared")
         raise UserError(f"{folder}: neither a run folder (report.json) nor a sweep folder (sweep.json)")
     report = load_report(folder)

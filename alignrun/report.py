@@ -18,7 +18,8 @@ report.json (SCHEMA "alignrun.report/1") has these top-level keys:
     schema, run {name, status, steps, seed, wall_s, peak_rss_mb, started, finished, command},
     config (the resolved config as a dict), model {base, trainable_params, total_params, trainable_share},
     preflight {verdict, auroc, reward_auroc, forced}, training {final_kl, final_beta, reward_first,
-    reward_last, kl_target}, evaluation {prompts, samples_per_prompt, threshold, prompt_digest,
+    reward_last, kl_target}, data {heldout_overlap {shared, of, share} or null, warnings, prompts, heldout},
+    evaluation {prompts, samples_per_prompt, threshold, prompt_digest,
     before, after, change, per_prompt}, alarms [{level, code, message}], cautions [str],
     code_execution [str].
 """
@@ -98,6 +99,7 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
                      "reward_first": history[0]["reward_mean"] if history else None,
                      "reward_last": last.get("reward_mean"), "kl_target": cfg.kl.target,
                      "trained_prompts": len(split.train), "skipped_rows": len(split.skipped)},
+        "data": {key: getattr(split, "source", {}).get(key) for key in ("heldout_overlap", "warnings", "prompts", "heldout")},
         "evaluation": {
             "prompts": len(before.prompts), "samples_per_prompt": cfg.evaluation.samples_per_prompt,
             "threshold": cfg.evaluation.harm_threshold, "prompt_digest": prompt_digest(before.prompts),

@@ -103,15 +103,15 @@ def run_files(folder: Path) -> list[str]:
 
 
 def describe_run(folder: Path) -> str:
-    """One phrase for messages: what the folder holds, e.g. 'a finished run (step 5; report.json, adapter/ ...)'."""
+    """What the folder holds, for messages: 'a run (finished at step 5; config.toml, report.json, adapter/)'."""
     files = run_files(folder)
     try:
         status = read_status(folder)
     except UserError:
-        status = {"state": "unreadable status.json"}
-    state = f"{status['state']} run, step {status.get('step', '?')}" if status else "run (no status.json)"
+        status = {"state": "status.json unreadable"}
+    state = f"{status.get('state')} at step {status.get('step', '?')}" if status else "no status.json"
     shown = ", ".join(files[:6]) + (", ..." if len(files) > 6 else "")
-    return f"a {state} ({shown})"
+    return f"a run ({state}; {shown})"
 
 
 def inside(path: Path, folder: Path) -> bool:
