@@ -79,8 +79,25 @@ def staging_folder(folder: Path) -> Path:
     return tmp
 
 
+def _umask() -> int:
+    try:  # Linux names it without changing it
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("Umask:"):
+                return int(line.split()[1], 8)
+    except OSError:
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def replace_folder(tmp: Path, folder: Path) -> None:
-    """Swap a fully written folder into place by renames, so a reader sees the old or the new one, never half."""
+    """Swap a fully written folder into place by renames, so a reader sees the old or the new one, never half.
+    Its files get the user's mode first (safetensors writes 0600 files)."""
+    mode = 0o666 & ~_umask()
+    for path in Path(tmp).rglob("*"):
+        if path.is_file():
+            path.chmod(mode)
     folder = Path(folder)
     old = folder.with_name(f".{folder.name}.old")
     shutil.rmtree(old, ignore_errors=True)

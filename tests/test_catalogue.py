@@ -687,3 +687,26 @@ def test_debug_shows_traceback(tmp_path: Path) -> None:
     assert debug.returncode != 0
     assert "Traceback (most recent call last)" in debug.stderr
     assert "UserError" in debug.stderr and "config file not found" in debug.stderr
+
+
+@pytest.mark.slow
+def test_export_writes_only_where_it_says(tmp_path: Path, tiny_models: dict[str, Path], capsys) -> None:
+    """The success side of the export rows: a new folder and, with --overwrite, a non-empty one are written
+    via a staging folder; "written" is printed only after the model is in place."""
+    prompts = tiny_run.write_prompts(tmp_path / "prompts.jsonl")
+    config = tiny_run.write_config(tmp_path / "exp.toml", tiny_run.tiny_config(tiny_models["t5"], prompts, steps=1))
+    run = tmp_path / "run"
+    assert main(["run", str(config), "--out", str(run), "--quiet"]) == 0
+    run_before = _snapshot(run)
+    capsys.readouterr()
+    assert main(["export", str(run), "--merge", str(tmp_path / "merged")]) == 0
+    assert f"merged model written to {tmp_path / 'merged'}" in capsys.readouterr().out
+    assert (tmp_path / "merged" / "config.json").is_file() and (tmp_path / "merged" / "model.safetensors").is_file()
+    (tmp_path / "old").mkdir()
+    (tmp_path / "old" / "notes.txt").write_text("old")
+    assert main(["export", str(run), "--merge", str(tmp_path / "old")]) == 2
+    assert (tmp_path / "old" / "notes.txt").read_text() == "old"
+    assert main(["export", str(run), "--merge", str(tmp_path / "old"), "--overwrite"]) == 0
+    assert sorted(p.name for p in (tmp_path / "old").iterdir()) == sorted(p.name for p in (tmp_path / "merged").iterdir())
+    assert not list(tmp_path.glob(".old.*")) and not list(tmp_path.glob(".merged.*"))  # no staging leftovers
+    assert _snapshot(run) == run_before  # the run folder is only read
