@@ -248,6 +248,12 @@ def test_overwrite_replaces_the_run_and_keeps_other_files(experiment, reference)
     (run_dir / "status.json").unlink()  # still a run: recognised by its other files
     tiny_run.reset_call_counts()
     assert main(["run", str(experiment.config), "--out", str(run_dir), "--quiet"]) == 2
+    # the old run's files go before the new run starts: a new run that stops at the preflight leaves none behind
+    assert main(["run", str(experiment.config), "--out", str(run_dir), "--quiet", "--overwrite",
+                 "--set", f"reward.source={tiny_run.MODULE}:constant_harm"]) == 3
+    assert sorted(p.name for p in run_dir.iterdir()) == ["config.toml", "environment.json", "notes.txt",
+                                                         "preflight.json", "status.json"]
+    tiny_run.reset_call_counts()
     assert main(["run", str(experiment.config), "--out", str(run_dir), "--quiet", "--overwrite"]) == 0
     assert (run_dir / "notes.txt").read_text() == "mine"
     assert status(run_dir)["state"] == "finished"
