@@ -163,6 +163,19 @@ def _finished_pid() -> int:
     return child.pid
 
 
+def sweep_with_finished_trial(ws: Workspace, report: str, status: bool) -> list[str]:
+    """A sweep folder whose one trial (kl.coef = 0.1) finished; its report.json holds `report`."""
+    from alignrun.sweep import trial_name
+
+    trial = ws.root / "sweep" / trial_name({"kl.coef": 0.1})
+    trial.mkdir(parents=True)
+    (ws.root / "sweep" / "sweep.json").write_text("{}")
+    (trial / "report.json").write_text(report)
+    if status:
+        (trial / "status.json").write_text(json.dumps({"state": "finished", "step": 5}))
+    return ["sweep", str(sweep_config(ws, {"kl.coef": [0.1]})), "--out", str(ws.root / "sweep")]
+
+
 def sweep_config(ws: Workspace, grid: dict[str, Any] | None) -> Path:
     body = ws.body()
     if grid is not None:
@@ -550,6 +563,12 @@ CASES: list[Case] = [
     Case("sweep-into-a-run-folder", "sweep",
          lambda ws: (fake_finished_run(ws), ["sweep", str(sweep_config(ws, {"kl.coef": [0.1, 0.2]})), "--out", str(ws.out)])[1],
          ("{out}", "not a sweep folder", "another --out"), existing_run=True),
+    Case("sweep-damaged-trial-report", "sweep", lambda ws: sweep_with_finished_trial(ws, '{"schema": "ali', status=True),
+         ("sweep/kl.coef=0.1/report.json", "not valid JSON", "damaged"), guarded=lambda ws: ws.root / "sweep"),
+    Case("sweep-finished-trial-without-status", "sweep",
+         lambda ws: sweep_with_finished_trial(ws, json.dumps({"schema": "alignrun.report/1", "config": {}}), status=False),
+         ("kl.coef=0.1", "already finished with a different config", "another --out"),
+         guarded=lambda ws: ws.root / "sweep"),
     Case("sweep-zero-workers", "sweep", lambda ws: ["sweep", str(sweep_config(ws, {"kl.coef": [0.1]})), "--workers", "0"],
          ("--workers must be at least 1",)),
     # -------------------------------------------------------------------------------- compare
