@@ -328,8 +328,9 @@ def export_merged(run_dir: str | Path, out: str | Path, overwrite: bool = False)
     if out.exists() and not out.is_dir():
         raise UserError(f"--merge {out}: a file of that name exists; choose a new folder name")
     if out.is_dir() and any(out.iterdir()) and not overwrite:
-        shown = ", ".join(sorted(p.name for p in out.iterdir())[:5])
-        raise UserError(f"--merge {out}: the folder is not empty ({shown}, ...); choose a new folder, or replace "
+        names = sorted(p.name for p in out.iterdir())
+        shown = ", ".join(names[:5]) + (", ..." if len(names) > 5 else "")
+        raise UserError(f"--merge {out}: the folder is not empty ({shown}); choose a new folder, or replace "
                         "it entirely with --overwrite")
     model, tokenizer = load_base(cfg.base, torch.device("cpu"))
     merged = PeftModel.from_pretrained(model, adapter).merge_and_unload()

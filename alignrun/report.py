@@ -50,7 +50,8 @@ CAUTIONS = [
 def load_report(run_dir: Path) -> dict[str, Any]:
     """Read a run's report.json, refusing schemas this version cannot read with a clear message."""
     path = Path(run_dir) / "report.json"
-    report = read_json(path, "report")
+    report = read_json(path, "report", f"delete it and write it again with: alignrun run CONFIG --resume {run_dir} "
+                       "(training is not repeated)")
     schema = report.get("schema") if isinstance(report, dict) else None
     if schema not in READABLE_SCHEMAS:
         raise UserError(

@@ -62,14 +62,13 @@ def _jsonable(obj: Any) -> Any:
     raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
 
 
-def read_json(path: Path, what: str) -> Any:
+def read_json(path: Path, what: str, fix: str = "restore it from a backup or re-create it") -> Any:
     try:
         return json.loads(Path(path).read_text(encoding="utf-8"))
     except FileNotFoundError:
         raise UserError(f"{path}: {what} not found") from None
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise UserError(f"{path}: {what} is not valid JSON ({exc}); the file is damaged: restore it from a "
-                        "backup or re-create it") from None
+        raise UserError(f"{path}: {what} is not valid JSON ({exc}); the file is damaged: {fix}") from None
 
 
 def staging_folder(folder: Path) -> Path:

@@ -242,6 +242,22 @@ def test_resuming_a_finished_run_changes_nothing(experiment, reference, capsys) 
 
 
 @pytest.mark.slow
+def test_a_damaged_report_is_named_and_written_again_without_training(experiment, reference, capsys) -> None:
+    run_dir = copy_of(reference, "damaged-report")
+    (run_dir / "report.json").write_text('{"schema": "alignrun.rep')
+    metrics = hashes(run_dir)["metrics.jsonl"]
+    capsys.readouterr()
+    assert resume(experiment.config, run_dir) == 2
+    err = capsys.readouterr().err
+    assert f"{run_dir / 'report.json'}: report is not valid JSON" in err and "delete it" in err
+    (run_dir / "report.json").unlink()  # as the message says
+    assert resume(experiment.config, run_dir) == 0
+    assert f"training continues from step {STEPS}" in capsys.readouterr().out
+    assert hashes(run_dir)["metrics.jsonl"] == metrics  # no step was trained again
+    assert tiny_run.report_numbers(run_dir) == tiny_run.report_numbers(reference)
+
+
+@pytest.mark.slow
 def test_overwrite_replaces_the_run_and_keeps_other_files(experiment, reference) -> None:
     run_dir = copy_of(reference, "overwritten")
     (run_dir / "notes.txt").write_text("mine")
