@@ -91,8 +91,14 @@ def collect(paths: list[str]) -> tuple[list[Run], list[str]]:
                     continue
                 except UserError as exc:
                     reason = str(exc)
-            else:
-                reason = f"{trial.get('state', '?')}: {str(trial.get('error') or 'not run yet').splitlines()[0]}"
+            else:  # the trial's own status.json is fresher than the index (a killed sweep leaves "pending")
+                try:
+                    own = read_status(folder) or {}
+                except UserError as exc:
+                    own = {"error": str(exc)}
+                state = own.get("state") or trial.get("state", "?")
+                why = own.get("note") or trial.get("error") or own.get("error") or "not run yet"
+                reason = f"{state}: {str(why).splitlines()[0]}"
             left_out.append(f"{trial.get('name')} ({reason})")
         if left_out:
             notes.append(f"sweep {path}: {len(left_out)} of {len(index['trials'])} trials left out: " + "; ".join(left_out))

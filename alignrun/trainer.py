@@ -218,8 +218,8 @@ def run_experiment(cfg: Experiment, out: Path, *, resume: bool = False, force: b
     folder = RunFolder(out)
     check_run_folder(out, resume, overwrite)
     if resume and (out / "report.json").exists():
-        print(f"{out}: holds {describe_run(out)} that already finished; nothing to resume, nothing changed. "
-              "To train again, start a new run with another --out", flush=True)
+        print(f"{out}: this run already finished; nothing to resume, nothing changed. To train again, start a new "
+              "run with another --out", flush=True)
         return load_report(out)
     check_inputs(cfg)  # missing files and an absent GPU, before anything loads or is written
     previous = read_status(out) if resume else None  # read before our lock replaces a dead one
@@ -504,7 +504,7 @@ NOT_RESULT_KEYS = {"run.name", "run.out", "run.checkpoint_every"}
 
 
 def result_differences(saved: Experiment, cfg: Experiment) -> list[str]:
-    """'key: saved -> now' for every key that changes a run's result and differs between two configs."""
+    """'key: X in the run, Y now' for every key that changes a run's result and differs between the configs."""
     def flat(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
         out: dict[str, Any] = {}
         for key, value in tree.items():

@@ -149,12 +149,23 @@ def damaged_base(ws: Workspace, name: str, damage: Callable[[bytes], bytes]) -> 
 
 def dead_running_run(ws: Workspace) -> Path:
     """A run SIGKILLed at step 2: status.json still says running, the lock names a process that is gone."""
-    ws.out.mkdir()
+    ws.out.mkdir(parents=True)
     (ws.out / "status.json").write_text(json.dumps({"state": "running", "step": 2}))
     (ws.out / "config.toml").write_text(ws.config().read_text())
     (ws.out / ".lock").write_text(json.dumps({"pid": _finished_pid(), "host": socket.gethostname(),
                                               "since": "2030-01-01T00:00:00"}))
     return ws.out
+
+
+def sweep_with_dead_trial(ws: Workspace) -> Path:
+    """A sweep killed while its one trial ran: sweep.json still says pending, the trial's status says running."""
+    from alignrun.sweep import SCHEMA
+
+    ws.out = ws.root / "sweep" / "t1"
+    dead_running_run(ws)
+    (ws.root / "sweep" / "sweep.json").write_text(json.dumps(
+        {"schema": SCHEMA, "trials": [{"name": "t1", "folder": "t1", "state": "pending", "error": None}]}))
+    return ws.root / "sweep"
 
 
 def _finished_pid() -> int:
@@ -576,6 +587,9 @@ CASES: list[Case] = [
          ("{root}/nothing", "no such folder")),
     Case("compare-dead-run", "compare", lambda ws: ["compare", str(dead_running_run(ws))],
          ("{out}", "status: dead, step 2", "is gone", "--resume"), guarded=lambda ws: ws.out),
+    Case("compare-sweep-with-dead-trial", "compare", lambda ws: ["compare", str(sweep_with_dead_trial(ws))],
+         ("nothing to compare", "t1 (dead: status.json says running at step 2", "is gone"),
+         guarded=lambda ws: ws.root / "sweep"),
     Case("compare-damaged-report", "compare",
          lambda ws: (fake_finished_run(ws), (ws.out / "report.json").write_bytes(b'{"schema": "alig'), ["compare", str(ws.out)])[2],
          ("{out}/report.json", "not valid JSON", "damaged"), guarded=lambda ws: ws.out),
