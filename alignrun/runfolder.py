@@ -233,9 +233,6 @@ class RunFolder:
         write_json_atomic(self.path / "status.json",
                           {"state": state, "updated": time.strftime("%Y-%m-%dT%H:%M:%S"), **extra})
 
-    def status(self) -> dict[str, Any] | None:
-        return read_status(self.path)
-
     def __enter__(self) -> RunFolder:
         self.acquire()
         return self

@@ -34,7 +34,7 @@ from hypothesis import strategies as st
 import alignrun.trainer
 from alignrun.cli import main
 from alignrun.errors import UserError
-from alignrun.runfolder import RunFolder
+from alignrun.runfolder import RunFolder, read_status
 from tests import tiny_run
 
 STEPS = 5
@@ -220,7 +220,7 @@ def test_a_killed_run_reads_as_dead_in_status_and_compare(killed) -> None:
     run_dir = copy_of(killed(3), "dead")
     assert status(run_dir)["state"] == "running"  # what the killed process last wrote
     pid = json.loads((run_dir / ".lock").read_text())["pid"]
-    seen = RunFolder(run_dir).status()
+    seen = read_status(run_dir)
     assert seen is not None and seen["state"] == "dead" and seen["step"] == 3 and f"process {pid}" in seen["note"]
     with pytest.raises(UserError, match=rf"status: dead, step 3; .*process {pid} .* is gone"):
         compare.compare_cli([str(run_dir)], fmt="table", plot_dir=None, report=None)
@@ -576,7 +576,7 @@ def _dead_pid() -> int:
 def test_lock_and_status_follow_a_simple_model(ops: list[tuple]) -> None:
     """Model: the lock is free, ours, or someone else's (live, dead, or on another host). Acquiring takes a
     free or dead lock and refuses the rest naming the owner's pid; release removes only our own lock;
-    status() returns the last state written, except "running" without a live writer, which reads "dead";
+    read_status returns the last state written, except "running" without a live writer, which reads "dead";
     no temporary files are left."""
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "run"
@@ -614,7 +614,7 @@ def test_lock_and_status_follow_a_simple_model(ops: list[tuple]) -> None:
             assert folder.locked == (lock == "ours")
             if lock == "ours":
                 assert json.loads((path / ".lock").read_text())["pid"] == os.getpid()
-            got = folder.status() if path.exists() else None
+            got = read_status(path) if path.exists() else None
             expected = last_status
             if expected and expected[0] == "running" and lock in (None, "dead"):
                 expected = ("dead", expected[1])  # a running status whose writer is gone reads as dead
