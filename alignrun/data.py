@@ -53,21 +53,12 @@ def load_prompts(section: DataSection, seed: int, per_step: int = 0) -> PromptSp
     prompts than one PPO step takes (per_step): the step then repeats prompts, which is allowed."""
     train, train_skipped, train_source = _read_for_key(section, "data.prompts", section.prompts)
     skipped = list(train_skipped)
-    source: dict[str, Any] = {"prompts": train_source, "warnings": [], "heldout_overlap": None}
+    source: dict[str, Any] = {"prompts": train_source, "warnings": []}
     _warn_duplicates(source, "data.prompts", train_source)
     if section.heldout is not None:
         heldout, held_skipped, source["heldout"] = _read_for_key(section, "data.heldout", section.heldout)
         _warn_duplicates(source, "data.heldout", source["heldout"])
         skipped += held_skipped
-        in_train = {_folded(t) for t in train}
-        shared = [t for t in heldout if _folded(t) in in_train]
-        source["heldout_overlap"] = {"shared": len(shared), "of": len(heldout), "share": len(shared) / len(heldout)}
-        if shared:
-            source["warnings"].append(
-                f"{len(shared)} of {len(heldout)} held-out prompts ({100 * len(shared) / len(heldout):.0f}%) also "
-                f"appear in the training prompts (e.g. {shared[0][:60]!r}); held-out results will look better than "
-                "they are: remove them from one of the two files"
-            )
         source["split"] = "explicit held-out file (data.heldout)"
     else:
         if len(train) < 2:
@@ -82,6 +73,16 @@ def load_prompts(section: DataSection, seed: int, per_step: int = 0) -> PromptSp
         source["heldout"] = None
         source["split"] = f"shuffled by seed {seed}, data.heldout_share = {section.heldout_share}"
     source["train"], source["heldout_prompts"] = len(train), len(heldout)
+    # the same prompt typed differently (case, spacing) is still a leak, also across a split of one file
+    in_train = {_folded(t) for t in train}
+    shared = [t for t in heldout if _folded(t) in in_train]
+    source["heldout_overlap"] = {"shared": len(shared), "of": len(heldout), "share": len(shared) / len(heldout)}
+    if shared:
+        source["warnings"].append(
+            f"{len(shared)} of {len(heldout)} held-out prompts ({100 * len(shared) / len(heldout):.0f}%) also "
+            f"appear in the training prompts (e.g. {shared[0][:60]!r}); held-out results will look better than "
+            "they are: remove them from one of the two files"
+        )
     if len(train) < per_step:
         source["warnings"].append(
             f"only {len(train)} distinct training prompts but ppo.prompts_per_step = {per_step}: every step repeats "

@@ -404,6 +404,14 @@ def test_overlap_ignores_case_and_spacing(tmp_path):
     assert load_prompts(section(train, heldout=str(held)), seed=0).source["heldout_overlap"]["shared"] == 1
 
 
+def test_a_split_of_one_file_reports_no_overlap_and_catches_retyped_copies(tmp_path):
+    clean = load_prompts(section(make_jsonl(tmp_path, many(10))), seed=0)
+    assert clean.source["heldout_overlap"] == {"shared": 0, "of": 2, "share": 0.0} and clean.source["warnings"] == []
+    path = jsonl(tmp_path / "retyped.jsonl", [{"prompt": p} for p in many(10) + [m.upper() for m in many(10)]])
+    split = load_prompts(section(path, heldout_share=0.5), seed=0)  # 20 distinct strings, 10 prompts
+    assert split.source["heldout_overlap"]["shared"] > 0  # a prompt and its upper-case copy on both sides
+
+
 def test_forty_copies_of_one_prompt_are_counted(tmp_path):
     path = make_jsonl(tmp_path, ["Fix my flat tyre"] * 40 + many(3))
     split = load_prompts(section(path, heldout_share=0.3), seed=0)
