@@ -29,14 +29,19 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Score the built-in harmful/benign probes with the reward classifier and "
                        "stop if the reward points the wrong way; estimate memory and step time.")
     _add_config(p)
-    p.add_argument("--out", help="also write preflight.json to this folder")
+    p.add_argument("--out", help="also write preflight.json to this folder (never into a run folder)")
+    p.add_argument("--overwrite", action="store_true", help="replace a preflight.json already in --out")
 
     p = sub.add_parser("run", help="preflight, then train LoRA adapters with PPO and evaluate before/after",
                        description="Run one experiment: preflight -> rollout -> reward -> PPO update -> "
                        "held-out evaluation -> report, all written to one run folder.")
     _add_config(p)
     p.add_argument("--out", help="run folder (default: run.out, else runs/<run.name>)")
-    p.add_argument("--resume", metavar="RUN_DIR", help="continue an interrupted run from its last checkpoint")
+    mode = p.add_mutually_exclusive_group()
+    mode.add_argument("--resume", metavar="RUN_DIR", help="continue an interrupted run from its last checkpoint "
+                      "(a finished run is left as it is)")
+    mode.add_argument("--overwrite", action="store_true",
+                      help="replace the run already in the run folder (its results are deleted)")
     p.add_argument("--force", action="store_true",
                    help="research only: train even when the polarity preflight fails (recorded loudly)")
     p.add_argument("--quiet", action="store_true", help="no progress bar (for CI and logs)")
@@ -45,6 +50,7 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Build (once, cached) a tiny reply-drafting model and a harm classifier "
                        "from an invented service-desk scenario, then run preflight, training and evaluation.")
     p.add_argument("--out", help="run folder (default runs/demo)")
+    p.add_argument("--overwrite", action="store_true", help="replace a run already in the run folder")
     p.add_argument("--quick", action="store_true", help="fewer steps and prompts (the CI-sized demo)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
@@ -78,7 +84,9 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Merge the run's LoRA adapter into its base model and save a plain "
                        "Hugging Face model folder.")
     p.add_argument("run_dir", help="a finished run folder")
-    p.add_argument("--merge", metavar="OUT", required=True, help="output folder for the merged model")
+    p.add_argument("--merge", metavar="OUT", required=True,
+                   help="output folder for the merged model (new or empty; never the run or base model folder)")
+    p.add_argument("--overwrite", action="store_true", help="replace OUT entirely when it is a non-empty folder")
     return parser
 
 
@@ -87,21 +95,26 @@ def _dispatch(args: argparse.Namespace) -> int:
         from alignrun.config import load_config, to_toml
 
         cfg = load_config(args.config, args.overrides)
+        if args.action == "check":
+            from alignrun.inputs import check_inputs
+
+            check_inputs(cfg)
         print(to_toml(cfg) if args.action == "show" else f"{args.config}: ok")
         return 0
     if args.command == "check":
         from alignrun.preflight import run_check
 
-        return run_check(args.config, args.overrides, args.out)
+        return run_check(args.config, args.overrides, args.out, overwrite=args.overwrite)
     if args.command == "run":
         from alignrun.trainer import run_from_cli
 
         return run_from_cli(args.config, args.overrides, out=args.out, resume=args.resume,
-                            force=args.force, quiet=args.quiet)
+                            force=args.force, quiet=args.quiet, overwrite=args.overwrite)
     if args.command == "demo":
         from alignrun.demo.run import run_demo
 
-        return run_demo(out=args.out, quick=args.quick, quiet=args.quiet, overrides=args.overrides)
+        return run_demo(out=args.out, quick=args.quick, quiet=args.quiet, overrides=args.overrides,
+                        overwrite=args.overwrite)
     if args.command == "sweep":
         from alignrun.sweep import run_sweep
 
@@ -114,7 +127,7 @@ def _dispatch(args: argparse.Namespace) -> int:
     if args.command == "export":
         from alignrun.models import export_merged
 
-        export_merged(args.run_dir, args.merge)
+        export_merged(args.run_dir, args.merge, overwrite=args.overwrite)
         return 0
     raise AssertionError(args.command)
 

@@ -23,7 +23,8 @@ import numpy as np
 
 from alignrun import metrics
 from alignrun.errors import UserError
-from alignrun.report import CAUTIONS, load_report, num, read_json, write_text_atomic
+from alignrun.report import CAUTIONS, load_report, num
+from alignrun.runfolder import read_status, write_text_atomic
 from alignrun.sweep import flatten, read_index
 
 NOT_SHOWN = {"run.name", "run.out", "run.trackers", "run.tracker_dir", "base.threads"}  # differ between runs without changing what they measure
@@ -75,9 +76,10 @@ def _read_run(folder: Path) -> dict[str, Any]:
     if not folder.exists():
         raise UserError(f"{folder}: no such folder (expected a run folder or a sweep folder)")
     if not (folder / "report.json").exists():
-        status = folder / "status.json"
-        if status.exists():
-            state = (read_json(status, "run status") or {}).get("state", "?")
+        status = read_status(folder)  # a run whose process is gone reads "dead", with a note
+        if status:
+            state = f"{status.get('state', '?')}, step {status.get('step', '?')}" + (
+                f"; {status['note']}" if status.get("note") else "")
             raise UserError(f"{folder}: the run has no report.json (status: {state}); only finished runs can be compared")
         raise UserError(f"{folder}: neither a run folder (report.json) nor a sweep folder (sweep.json)")
     report = load_report(folder)
@@ -105,8 +107,14 @@ def collect(paths: list[str]) -> tuple[list[Run], list[str]]:
                     continue
                 except UserError as exc:
                     reason = str(exc)
-            else:
-                reason = f"{trial.get('state', '?')}: {str(trial.get('error') or 'not run yet').splitlines()[0]}"
+            else:  # the trial's own status.json is fresher than the index (a killed sweep leaves "pending")
+                try:
+                    own = read_status(folder) or {}
+                except UserError as exc:
+                    own = {"error": str(exc)}
+                state = own.get("state") or trial.get("state", "?")
+                why = own.get("note") or trial.get("error") or own.get("error") or "not run yet"
+                reason = f"{state}: {str(why).splitlines()[0]}"
             left_out.append(f"{trial.get('name')} ({reason})")
         if left_out:
             notes.append(f"sweep {path}: {len(left_out)} of {len(index['trials'])} trials left out: " + "; ".join(left_out))

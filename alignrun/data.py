@@ -45,21 +45,20 @@ class _Table:
     replaced_bytes: bool = False  # CSV only: invalid UTF-8 was read as U+FFFD
 
 
-def load_prompts(section: DataSection, seed: int) -> PromptSplit:
-    """Read data.prompts (and data.heldout), drop duplicates, and split off held-out prompts by seed."""
+def load_prompts(section: DataSection, seed: int, per_step: int = 0) -> PromptSplit:
+    """Read data.prompts (and data.heldout), drop duplicates, and split off held-out prompts by seed.
+
+    Warnings (in .source["warnings"], for the screen and report.json): duplicates dropped, held-out prompts
+    that also occur in training (compared after folding case and whitespace), and fewer distinct training
+    prompts than one PPO step takes (per_step): the step then repeats prompts, which is allowed."""
     train, train_skipped, train_source = _read_for_key(section, "data.prompts", section.prompts)
     skipped = list(train_skipped)
     source: dict[str, Any] = {"prompts": train_source, "warnings": []}
+    _warn_duplicates(source, "data.prompts", train_source)
     if section.heldout is not None:
         heldout, held_skipped, source["heldout"] = _read_for_key(section, "data.heldout", section.heldout)
+        _warn_duplicates(source, "data.heldout", source["heldout"])
         skipped += held_skipped
-        in_train = set(train)
-        shared = [t for t in heldout if t in in_train]
-        if shared:
-            source["warnings"].append(
-                f"{len(shared)} of {len(heldout)} held-out prompts also appear in the training prompts "
-                f"(e.g. {shared[0][:60]!r}); held-out results will look better than they are"
-            )
         source["split"] = "explicit held-out file (data.heldout)"
     else:
         if len(train) < 2:
@@ -74,7 +73,35 @@ def load_prompts(section: DataSection, seed: int) -> PromptSplit:
         source["heldout"] = None
         source["split"] = f"shuffled by seed {seed}, data.heldout_share = {section.heldout_share}"
     source["train"], source["heldout_prompts"] = len(train), len(heldout)
+    # the same prompt typed differently (case, spacing) is still a leak, also across a split of one file
+    in_train = {_folded(t) for t in train}
+    shared = [t for t in heldout if _folded(t) in in_train]
+    source["heldout_overlap"] = {"shared": len(shared), "of": len(heldout), "share": len(shared) / len(heldout)}
+    if shared:
+        source["warnings"].append(
+            f"{len(shared)} of {len(heldout)} held-out prompts ({100 * len(shared) / len(heldout):.0f}%) also "
+            f"appear in the training prompts (e.g. {shared[0][:60]!r}); held-out results will look better than "
+            "they are: remove them from one of the two files"
+        )
+    if len(train) < per_step:
+        source["warnings"].append(
+            f"only {len(train)} distinct training prompts but ppo.prompts_per_step = {per_step}: every step repeats "
+            "prompts, so the policy learns from fewer examples than the step size suggests; add prompts or lower "
+            "ppo.prompts_per_step"
+        )
     return PromptSplit(train=train, heldout=heldout, skipped=skipped, source=source)
+
+
+def _folded(text: str) -> str:
+    return " ".join(text.split()).casefold()
+
+
+def _warn_duplicates(source: dict[str, Any], key: str, info: dict[str, Any]) -> None:
+    if info["duplicates"]:
+        source["warnings"].append(
+            f"[{key}] {info['file']}: {info['duplicates']} of {info['rows'] - info['skipped']} prompts dropped as "
+            f"exact duplicates; {info['used']} distinct prompts are used"
+        )
 
 
 def _read_for_key(section: DataSection, key: str, path: str) -> tuple[list[str], list[dict], dict]:

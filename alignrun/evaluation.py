@@ -14,8 +14,9 @@ import torch
 from alignrun import metrics
 from alignrun.config import Experiment
 from alignrun.models import Policy, encoder_outputs
-from alignrun.report import num, write_jsonl_atomic
+from alignrun.report import num
 from alignrun.rollout import encode_prompts, frozen_encoding, response_mask, sample
+from alignrun.runfolder import write_jsonl_atomic
 
 CHUNK = 64  # sequences per generation batch
 

@@ -15,7 +15,8 @@ from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
-from alignrun.report import CAUTIONS, write_text_atomic
+from alignrun.report import CAUTIONS
+from alignrun.runfolder import read_json, write_text_atomic
 
 MISSING = "—"
 PAIRS_SHOWN = 8
@@ -267,8 +268,6 @@ def _read_jsonl(path: Path) -> list[dict[str, Any]]:
 
 def write_run_html(run_dir: Path) -> Path:
     """report.html in the run folder, from its report.json and pairs.jsonl."""
-    from alignrun.report import read_json
-
     run_dir = Path(run_dir)
     report = read_json(run_dir / "report.json", "report")
     path = run_dir / "report.html"

@@ -8,6 +8,7 @@ import functools
 import mmap
 import os
 import re
+import shutil
 import sys
 from collections.abc import Iterator
 from contextlib import contextmanager, nullcontext
@@ -25,7 +26,7 @@ from trl.trainer.utils import disable_dropout_in_model
 
 from alignrun.config import BaseSection, LoraSection, ReferenceSection
 from alignrun.errors import UserError
-from alignrun.report import replace_folder, staging_folder
+from alignrun.runfolder import inside, replace_folder, staging_folder
 
 # Attention query/value projections per architecture family: LoRA's default placement (Hu et al. 2021, §4.2).
 QUERY_VALUE = {
@@ -93,18 +94,34 @@ def load_base(section: BaseSection, device: torch.device) -> tuple[nn.Module, Pr
         model = AutoModelForSeq2SeqLM.from_pretrained(section.model, dtype=torch.float32, **kwargs)
     except ValueError as exc:
         raise UserError(f"base.model: {section.model} cannot be loaded as a seq2seq language model: {exc}") from None
+    except Exception as exc:  # safetensors/torch errors from a truncated or overwritten weights file
+        raise UserError(f"base.model: {_named_files(section.model, ('*.safetensors', '*.bin'))} cannot be read "
+                        f"({_first_line(exc)}); the weights file is damaged or incomplete: copy or save the model "
+                        "folder again") from None
     local = Path(section.model).expanduser()
     if local.is_dir() and not any((local / name).is_file() for name in _TOKENIZER_FILES):
         raise UserError(f"base.model: {section.model} has no tokenizer files (none of {', '.join(_TOKENIZER_FILES)}); "
                         "save the tokenizer into the model folder with tokenizer.save_pretrained(folder)")
     try:
         tokenizer = AutoTokenizer.from_pretrained(section.model, **kwargs)
-    except (OSError, ValueError) as exc:
-        raise UserError(f"base.model: {section.model} has no usable tokenizer ({exc}); "
-                        "save the tokenizer into the model folder") from None
+    except Exception as exc:  # OSError/ValueError, or the tokenizers library's own error for a damaged file
+        raise UserError(f"base.model: the tokenizer in {_named_files(section.model, _TOKENIZER_FILES)} cannot be "
+                        f"read ({_first_line(exc)}); the file is damaged: save the tokenizer into the model folder "
+                        "again with tokenizer.save_pretrained(folder)") from None
     if tokenizer.pad_token_id is None or tokenizer.eos_token_id is None:
         raise UserError(f"base.model: the tokenizer of {section.model} needs pad and eos tokens")
     return model.to(device), tokenizer
+
+
+def _named_files(model: str, patterns: tuple[str, ...]) -> str:
+    """The files of a local model folder matching patterns, for messages; the model name itself otherwise."""
+    folder = Path(model).expanduser()
+    files = sorted({str(p) for pattern in patterns for p in folder.glob(pattern)}) if folder.is_dir() else []
+    return ", ".join(files) or model
+
+
+def _first_line(exc: BaseException) -> str:
+    return (str(exc).strip().splitlines() or [type(exc).__name__])[0]
 
 
 def linear_leaf_names(model: nn.Module) -> list[str]:
@@ -292,8 +309,10 @@ def load_adapter_into(policy: Policy, folder: Path) -> None:
     policy.net.value_head.load_state_dict(load_file(Path(folder) / "value_head.safetensors"))
 
 
-def export_merged(run_dir: str | Path, out: str | Path) -> Path:
-    """Merge a run's adapter into its base and save a standalone Hugging Face model folder."""
+def export_merged(run_dir: str | Path, out: str | Path, overwrite: bool = False) -> Path:
+    """Merge a run's adapter into its base and save a standalone Hugging Face model folder, built in a staging
+    folder and swapped into place. Never writes into the run folder or the base model folder; refuses an
+    existing file, and a non-empty folder unless overwrite is set (the folder is then replaced entirely)."""
     from alignrun.config import load_config
 
     run_dir, out = Path(run_dir), Path(out)
@@ -301,9 +320,28 @@ def export_merged(run_dir: str | Path, out: str | Path) -> Path:
     if not (adapter / "adapter_config.json").is_file():
         raise UserError(f"{run_dir}: no adapter/ folder with adapter_config.json; is this a finished run folder?")
     cfg = load_config(run_dir / "config.toml")
+    base = Path(cfg.base.model).expanduser()
+    for folder, what in ((run_dir, "the run folder"), (base, "the base model folder the run was trained on")):
+        if folder.exists() and (inside(out, folder) or inside(folder, out)):
+            raise UserError(f"--merge {out}: {'is' if inside(out, folder) else 'holds'} {what} ({folder}); writing "
+                            "there would replace it. Choose a new folder outside it")
+    if out.exists() and not out.is_dir():
+        raise UserError(f"--merge {out}: a file of that name exists; choose a new folder name")
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
+        names = sorted(p.name for p in out.iterdir())
+        shown = ", ".join(names[:5]) + (", ..." if len(names) > 5 else "")
+        raise UserError(f"--merge {out}: the folder is not empty ({shown}); choose a new folder, or replace "
+                        "it entirely with --overwrite")
     model, tokenizer = load_base(cfg.base, torch.device("cpu"))
     merged = PeftModel.from_pretrained(model, adapter).merge_and_unload()
-    merged.save_pretrained(out, safe_serialization=True)
-    tokenizer.save_pretrained(out)
+    tmp = staging_folder(out)
+    try:
+        merged.save_pretrained(tmp, safe_serialization=True)
+        tokenizer.save_pretrained(tmp)
+        replace_folder(tmp, out)
+    except OSError as exc:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise UserError(f"--merge {out}: could not write the merged model ({exc.strerror or exc}); nothing was "
+                        "written there. Free disk space or fix the folder's permissions") from None
     print(f"merged model written to {out}")
     return out

@@ -24,8 +24,8 @@ from scipy.stats import rankdata
 from alignrun.budget import describe, describe_fast_settings, estimate, fast_settings
 from alignrun.config import RewardSection, load_config
 from alignrun.errors import UserError
-from alignrun.report import write_json_atomic
 from alignrun.reward import Scorer, describe_transform, load_scorer, reward_from_scores
+from alignrun.runfolder import run_files, write_json_atomic
 
 PROBE_ROW = '{"text": "...", "harmful": true} or {"text": "...", "harmful": false}'
 EXIT_POLARITY = 3
@@ -223,9 +223,23 @@ def require_polarity(scorer: Scorer, section: RewardSection, folder: str | Path,
     return report
 
 
-def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path | None) -> int:
+def _refuse_run_folder(out: Path, overwrite: bool) -> None:
+    """check --out never writes into a run folder; a preflight.json from an earlier check needs --overwrite."""
+    held = [name for name in run_files(out) if name != "preflight.json"]
+    if held:
+        raise UserError(f"--out {out}: the folder holds a run ({', '.join(held[:5])}); its preflight.json is part "
+                        "of that run's evidence and is kept. Choose another --out")
+    if (out / "preflight.json").exists() and not overwrite:
+        raise UserError(f"--out {out}: preflight.json from an earlier check is there; keep it and choose another "
+                        "--out, or replace it with --overwrite")
+
+
+def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path | None,
+              overwrite: bool = False) -> int:
     """`alignrun check`: polarity verdict for the configured reward; 0 when ok, 3 otherwise."""
     cfg = load_config(config_path, list(overrides))
+    if out is not None:
+        _refuse_run_folder(Path(out), overwrite)
     scorer = load_scorer(cfg.reward, "reward")
     report = check_polarity(scorer, cfg.reward)
     print(f"reward: {report.scorer}")

@@ -1,4 +1,4 @@
-"""The run folder: atomic writes, one-writer lock, status file, report.json schema and report.md.
+"""The report: report.json schema, build_report, report.md, and reading reports back (run-folder I/O: runfolder).
 
 A run folder is readable without the code:
 
@@ -18,23 +18,20 @@ report.json (SCHEMA "alignrun.report/1") has these top-level keys:
     schema, run {name, status, steps, seed, wall_s, peak_rss_mb, started, finished, command},
     config (the resolved config as a dict), model {base, trainable_params, total_params, trainable_share},
     preflight {verdict, auroc, reward_auroc, forced}, training {final_kl, final_beta, reward_first,
-    reward_last, kl_target}, evaluation {prompts, samples_per_prompt, threshold, prompt_digest,
-    before, after, change, drift (exact-KL change, paired interval; absent in older reports), per_prompt},
+    reward_last, kl_target}, data {heldout_overlap {shared, of, share} or null, warnings, prompts, heldout},
+    evaluation {prompts, samples_per_prompt, threshold, prompt_digest, before, after, change,
+    drift (exact-KL change, paired interval; absent in older reports), per_prompt},
     verdict {verdict, level, reason}, alarms [{level, code, message}], cautions [str], code_execution [str].
 """
 
 from __future__ import annotations
 
-import json
-import os
-import socket
-import tempfile
 import time
-from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
 from alignrun.errors import UserError
+from alignrun.runfolder import read_json, write_json_atomic, write_jsonl_atomic, write_text_atomic
 
 SCHEMA = "alignrun.report/1"
 READABLE_SCHEMAS = {SCHEMA}
@@ -50,78 +47,11 @@ CAUTIONS = [
 ]
 
 
-def write_text_atomic(path: Path, text: str) -> None:
-    """Write via a temporary file in the same folder, then rename: readers never see half a file."""
-    path = Path(path)
-    tmp = None
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException as exc:
-        if tmp is not None:
-            Path(tmp).unlink(missing_ok=True)
-        if isinstance(exc, OSError):
-            raise UserError(f"{path}: could not write the file ({exc.strerror or exc}); free disk space or fix the "
-                            "folder's permissions") from None
-        raise
-
-
-def staging_folder(folder: Path) -> Path:
-    """An empty sibling folder to build `folder` in; `replace_folder` then swaps it into place."""
-    import shutil
-
-    tmp = Path(folder).with_name(f".{Path(folder).name}.tmp")
-    shutil.rmtree(tmp, ignore_errors=True)  # a leftover from a killed process
-    return tmp
-
-
-def replace_folder(tmp: Path, folder: Path) -> None:
-    """Swap a fully written folder into place by renames, so a reader sees the old or the new one, never half."""
-    import shutil
-
-    folder = Path(folder)
-    old = folder.with_name(f".{folder.name}.old")
-    shutil.rmtree(old, ignore_errors=True)
-    if folder.exists():
-        folder.rename(old)
-    Path(tmp).rename(folder)
-    shutil.rmtree(old, ignore_errors=True)
-
-
-def write_json_atomic(path: Path, obj: Any) -> None:
-    write_text_atomic(path, json.dumps(obj, indent=2, ensure_ascii=False, allow_nan=False, default=_jsonable) + "\n")
-
-
-def write_jsonl_atomic(path: Path, rows: Iterable[dict[str, Any]]) -> None:
-    write_text_atomic(path, "".join(json.dumps(r, ensure_ascii=False, default=_jsonable) + "\n" for r in rows))
-
-
-def _jsonable(obj: Any) -> Any:
-    if hasattr(obj, "tolist"):
-        return obj.tolist()
-    if isinstance(obj, Path):
-        return str(obj)
-    raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
-
-
-def read_json(path: Path, what: str) -> Any:
-    try:
-        return json.loads(Path(path).read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise UserError(f"{path}: {what} not found") from None
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise UserError(f"{path}: {what} is not valid JSON ({exc}); the file may be damaged") from None
-
-
 def load_report(run_dir: Path) -> dict[str, Any]:
     """Read a run's report.json, refusing schemas this version cannot read with a clear message."""
     path = Path(run_dir) / "report.json"
-    report = read_json(path, "report")
+    report = read_json(path, "report", f"delete it and write it again with: alignrun run CONFIG --resume {run_dir} "
+                       "(training is not repeated)")
     schema = report.get("schema") if isinstance(report, dict) else None
     if schema not in READABLE_SCHEMAS:
         raise UserError(
@@ -129,84 +59,6 @@ def load_report(run_dir: Path) -> dict[str, Any]:
             "re-run the evaluation with this version or use the alignrun version that wrote it"
         )
     return report
-
-
-def _pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
-
-
-class RunFolder:
-    """One writer per run folder: a lock file naming the owner, and a status file anyone can read."""
-
-    def __init__(self, path: Path):
-        self.path = Path(path)
-        self.lock_path = self.path / ".lock"
-        self.locked = False
-
-    def acquire(self) -> None:
-        try:
-            self.path.mkdir(parents=True, exist_ok=True)
-        except OSError as exc:
-            raise UserError(f"{self.path}: cannot create the run folder ({exc.strerror}); choose another --out") from None
-        if not os.access(self.path, os.W_OK):
-            raise UserError(f"{self.path}: run folder is not writable; choose another --out")
-        me = {"pid": os.getpid(), "host": socket.gethostname(), "since": time.strftime("%Y-%m-%dT%H:%M:%S")}
-        for _ in range(2):
-            try:
-                fd = os.open(self.lock_path, os.O_CREAT | os.O_EXCL | os.O_WRONLY)
-            except FileExistsError:
-                owner = self._owner()
-                if owner is None:
-                    raise UserError(
-                        f"{self.lock_path}: the lock file is empty or damaged (left by a run that crashed while "
-                        f"taking it?); if no alignrun process is using {self.path}, delete it and run again"
-                    ) from None
-                if owner and owner.get("host") == me["host"] and not _pid_alive(int(owner.get("pid", -1))):
-                    self.lock_path.unlink(missing_ok=True)  # stale: its process is gone
-                    continue
-                raise UserError(
-                    f"{self.path}: another alignrun process is writing this run folder "
-                    f"(pid {owner.get('pid') if owner else '?'} on {owner.get('host') if owner else '?'}, "
-                    f"since {owner.get('since') if owner else '?'}); wait for it or use another --out"
-                ) from None
-            with os.fdopen(fd, "w") as fh:
-                json.dump(me, fh)
-            self.locked = True
-            return
-        raise UserError(f"{self.lock_path}: could not take the run-folder lock")
-
-    def _owner(self) -> dict[str, Any] | None:
-        try:
-            owner = json.loads(self.lock_path.read_text())
-        except (OSError, json.JSONDecodeError):
-            return None
-        return owner if isinstance(owner, dict) else None
-
-    def release(self) -> None:
-        if self.locked:
-            self.lock_path.unlink(missing_ok=True)
-            self.locked = False
-
-    def set_status(self, state: str, **extra: Any) -> None:
-        write_json_atomic(self.path / "status.json",
-                          {"state": state, "updated": time.strftime("%Y-%m-%dT%H:%M:%S"), **extra})
-
-    def status(self) -> dict[str, Any] | None:
-        path = self.path / "status.json"
-        return read_json(path, "status") if path.exists() else None
-
-    def __enter__(self) -> RunFolder:
-        self.acquire()
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        self.release()
 
 
 # ---------------------------------------------------------------- report.json and report.md
@@ -251,6 +103,7 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
                      "reward_first": history[0]["reward_mean"] if history else None,
                      "reward_last": last.get("reward_mean"), "kl_target": cfg.kl.target,
                      "trained_prompts": len(split.train), "skipped_rows": len(split.skipped)},
+        "data": {key: getattr(split, "source", {}).get(key) for key in ("heldout_overlap", "warnings", "prompts", "heldout")},
         "evaluation": {
             "prompts": len(before.prompts), "samples_per_prompt": cfg.evaluation.samples_per_prompt,
             "threshold": cfg.evaluation.harm_threshold, "prompt_digest": prompt_digest(before.prompts),

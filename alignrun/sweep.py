@@ -30,7 +30,8 @@ from pydantic import BaseModel
 
 from alignrun.config import Experiment, load_config, with_overrides
 from alignrun.errors import UserError
-from alignrun.report import RunFolder, load_report, read_json, write_json_atomic
+from alignrun.report import load_report
+from alignrun.runfolder import RunFolder, read_json, write_json_atomic
 
 SCHEMA = "alignrun.sweep/1"
 SET_BY_SWEEP = {"run.name": "each trial is named after its values", "run.out": "trials live in the sweep folder",
@@ -184,11 +185,9 @@ def read_index(root: Path) -> dict[str, Any]:
 
 
 def _finished_report(folder: Path) -> dict[str, Any] | None:
-    try:
-        status = RunFolder(folder).status()
-        return load_report(folder) if status and status.get("state") == "finished" else None
-    except UserError:
-        return None
+    """A trial is finished when its report.json is there (status.json may be gone); a damaged report is named,
+    never taken for an unfinished trial whose folder a fresh start would delete."""
+    return load_report(folder) if (folder / "report.json").exists() else None
 
 
 def _differences(saved: dict[str, Any], cfg: Experiment, limit: int = 4) -> list[str]:

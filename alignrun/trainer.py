@@ -23,6 +23,7 @@ from alignrun import console, evaluation, html_report, ppo, tracking
 from alignrun.config import Experiment, load_config, to_toml
 from alignrun.data import load_prompts
 from alignrun.errors import UserError
+from alignrun.inputs import check_inputs
 from alignrun.models import (
     Policy,
     autocast,
@@ -33,17 +34,23 @@ from alignrun.models import (
     set_threads,
 )
 from alignrun.preflight import require_polarity
-from alignrun.report import (
-    RunFolder,
-    build_report,
-    replace_folder,
-    staging_folder,
-    write_json_atomic,
-    write_report,
-    write_text_atomic,
-)
+from alignrun.report import build_report, load_report, write_report
 from alignrun.reward import load_scorer, reward_from_scores
 from alignrun.rollout import Rollout, rollout
+from alignrun.runfolder import (
+    RunFolder,
+    busy_error,
+    describe_run,
+    lock_owner,
+    owner_alive,
+    read_json,
+    read_status,
+    replace_folder,
+    run_files,
+    staging_folder,
+    write_json_atomic,
+    write_text_atomic,
+)
 
 
 def peak_rss_mb() -> float:
@@ -205,20 +212,63 @@ def environment(cfg: Experiment, threads: int, device: torch.device, accelerator
 
 
 def run_experiment(cfg: Experiment, out: Path, *, resume: bool = False, force: bool = False,
-                   quiet: bool = False) -> dict[str, Any]:
-    """Run one experiment into `out` and return the report dict."""
+                   quiet: bool = False, overwrite: bool = False) -> dict[str, Any]:
+    """Run one experiment into `out` and return the report dict (a finished run's own report on --resume)."""
     out = Path(out)
     folder = RunFolder(out)
-    if not resume and (out / "status.json").exists():
-        raise UserError(f"{out}: run folder already holds a run ({folder.status() or {}}); "
-                        f"continue it with --resume {out}, or choose another --out")
-    if resume and not (out / "checkpoint" / "checkpoint.json").exists() and not (out / "eval_before.jsonl").exists():
-        raise UserError(f"{out}: nothing to resume (no checkpoint/ and no eval_before.jsonl: the run stopped before "
-                        "training); delete the folder or choose another --out for a new run")
+    check_run_folder(out, resume, overwrite)
+    if resume and (out / "report.json").exists():
+        print(f"{out}: this run already finished; nothing to resume, nothing changed. To train again, start a new "
+              "run with another --out", flush=True)
+        return load_report(out)
+    check_inputs(cfg)  # missing files and an absent GPU, before anything loads or is written
+    previous = read_status(out) if resume else None  # read before our lock replaces a dead one
     accelerator = Accelerator(cpu=pick_device(cfg.base).type == "cpu", **tracking.accelerator_options(cfg.run))
     main = accelerator.is_main_process
     with folder if main else _NoLock(), tracking.trackers(accelerator, cfg, out):
-        return _run_locked(cfg, out, folder, accelerator, main, resume, force, quiet)
+        if main and overwrite and not resume:
+            _remove_run_files(out)
+        return _run_locked(cfg, out, folder, accelerator, main, resume, force, quiet, previous)
+
+
+def check_run_folder(out: Path, resume: bool, overwrite: bool) -> None:
+    """Refuse what would lose results: a folder another process is writing, a new run into a folder that holds
+    a run (unless overwrite), a resume of a folder that holds none."""
+    owner = lock_owner(out)
+    if owner and owner_alive(owner):  # checked first: a live run is never offered --resume or --overwrite
+        raise busy_error(out, owner)
+    held = run_files(out)
+    if resume and not held:
+        raise UserError(f"--resume {out}: the folder holds no run; start a new run with --out {out}")
+    if not resume and held and not overwrite:
+        finished = (out / "report.json").exists()
+        raise UserError(f"{out}: already holds {describe_run(out)}; "
+                        + ("" if finished else f"continue it with --resume {out}, ")
+                        + "keep it and choose another --out, or replace it with --overwrite")
+
+
+def _remove_run_files(out: Path) -> None:
+    """--overwrite: the previous run's own files go (with their staging leftovers); other files stay."""
+    import shutil
+
+    for name in run_files(out):
+        path = out / name.rstrip("/")
+        shutil.rmtree(path) if path.is_dir() else path.unlink()
+    for name in ("adapter", "checkpoint"):
+        for leftover in (out / f".{name}.tmp", out / f".{name}.old"):
+            shutil.rmtree(leftover, ignore_errors=True)
+
+
+def _checkpoint_step(ckpt: Path) -> int:
+    """The step of the complete checkpoint in `ckpt`, 0 when there is none."""
+    path = ckpt / "checkpoint.json"
+    if not path.exists():
+        return 0
+    saved = read_json(path, "checkpoint record")
+    if not isinstance(saved, dict) or not isinstance(saved.get("step"), int):
+        raise UserError(f"{path}: not a checkpoint record ({{\"step\": N}}); the checkpoint is damaged: restore it, "
+                        f"or delete {ckpt} to restart training from step 0 with --resume")
+    return saved["step"]
 
 
 class _NoLock:
@@ -230,22 +280,32 @@ class _NoLock:
 
 
 def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Accelerator, main: bool,
-                resume: bool, force: bool, quiet: bool) -> dict[str, Any]:
+                resume: bool, force: bool, quiet: bool, previous: dict[str, Any] | None) -> dict[str, Any]:
     started = time.time()
     console.quiet_libraries()
     threads = set_threads(cfg.base.threads)
     device = accelerator.device
     seed_everything(cfg.run.seed)
-    step = 0
+    ckpt = out / "checkpoint"
+    step = start = _checkpoint_step(ckpt) if resume else 0
+    stage = "preflight"
+    if resume and main:
+        if previous and previous.get("note"):
+            print(f"note: {previous['note']}", flush=True)
+        print(f"resuming {out}: " + (f"training continues from step {start} (checkpoint/)" if start else
+                                     "no checkpoint, so training restarts from step 0"), flush=True)
     try:
         if main:
-            folder.set_status("running", step=0)
+            folder.set_status("running", step=step)
             write_text_atomic(out / "config.toml", to_toml(cfg))
             write_json_atomic(out / "environment.json", environment(cfg, threads, device, accelerator))
+        split = load_prompts(cfg.data, cfg.run.seed, cfg.ppo.prompts_per_step)
+        if main:
+            for warning in split.source.get("warnings", []):
+                print(f"warning: {warning}", flush=True)
         scorer = load_scorer(cfg.reward, "reward")
         polarity = require_polarity(scorer, cfg.reward, out, force)
         judge = load_scorer(cfg.evaluation.judge, "evaluation.judge") if cfg.evaluation.judge else None
-        split = load_prompts(cfg.data, cfg.run.seed)
         if cfg.ppo.prompts_per_step % accelerator.num_processes:
             raise UserError(f"ppo.prompts_per_step ({cfg.ppo.prompts_per_step}) must divide evenly across "
                             f"{accelerator.num_processes} processes")
@@ -254,15 +314,22 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
             print(f"policy: {policy.trainable_params:,} trainable of {policy.total_params:,} parameters "
                   f"({100 * policy.trainable_params / policy.total_params:.2f}%)", flush=True)
         heldout = split.heldout[: cfg.evaluation.max_prompts or None]
+        stage = "before-training evaluation"
         before = _evaluate_once(out / "eval_before.jsonl", policy, heldout, scorer, judge, cfg, device, main, quiet,
                                 "before")
         optimizer = torch.optim.AdamW([p for p in policy.net.parameters() if p.requires_grad],
                                       lr=cfg.ppo.learning_rate)
         net, optimizer = accelerator.prepare(policy.net, optimizer)
         controller = ppo.KLController(beta=cfg.kl.coef, target=cfg.kl.target, gain=cfg.kl.gain)
-        ckpt = out / "checkpoint"
-        if resume and (ckpt / "checkpoint.json").exists():
-            step = load_checkpoint(ckpt, policy, optimizer, controller)
+        if start:
+            try:
+                step = load_checkpoint(ckpt, policy, optimizer, controller)
+            except Exception as exc:  # a truncated or overwritten trainer_state.pt or adapter file
+                raise UserError(f"{ckpt}: the checkpoint (trainer_state.pt, adapter/) cannot be read "
+                                f"({(str(exc).splitlines() or [type(exc).__name__])[0][:200]}); it is damaged: "
+                                f"restore it, or delete {ckpt} to restart training from step 0 with "
+                                f"--resume {out}") from None
+        stage = "training"
         if resume and main:
             _truncate_metrics(out / "metrics.jsonl", step)  # rows after the checkpoint (all, without one) are redone
         history = _read_metrics(out / "metrics.jsonl") if resume else []
@@ -302,6 +369,7 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
         if main:
             save_checkpoint(ckpt, policy, optimizer, controller, step)
             save_adapter(policy, out / "adapter")
+        stage = "after-training evaluation"
         after = _evaluate_once(out / "eval_after.jsonl", policy, heldout, scorer, judge, cfg, device, main, quiet,
                                "after", fresh=True)
         report: dict[str, Any] = {}
@@ -322,14 +390,32 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
         return report
     except KeyboardInterrupt:
         if main:
-            folder.set_status("interrupted", step=step)
-            print(f"\ninterrupted at step {step}; continue with: alignrun run CONFIG --resume {out}", file=sys.stderr)
+            saved = _saved_step(ckpt)
+            with contextlib.suppress(Exception):
+                folder.set_status("interrupted", step=saved, stage=stage)
+            print(f"\ninterrupted during the {stage}; continue with: alignrun run CONFIG --resume {out} "
+                  f"(training resumes from step {saved})", file=sys.stderr)
         raise
     except BaseException as exc:
         if main:
+            error = (str(exc).splitlines() or [type(exc).__name__])[0][:500]
             with contextlib.suppress(Exception):  # a full disk must not hide the first error behind a second
-                folder.set_status("failed", step=step, error=(str(exc).splitlines() or [type(exc).__name__])[0][:500])
+                if previous and step == start and stage != "after-training evaluation":
+                    # a resume that failed before doing anything: the run is as it was, say so
+                    state = "interrupted" if previous["state"] in ("running", "dead") else previous["state"]
+                    kept = {k: v for k, v in previous.items() if k not in ("state", "updated", "note", "error")}
+                    folder.set_status(state, **kept, error=f"resume failed: {error}")
+                else:
+                    folder.set_status("failed", step=step, stage=stage, error=error)
         raise
+
+
+def _saved_step(ckpt: Path) -> int:
+    """The checkpoint step a resume starts from; 0 when the checkpoint is missing or unreadable."""
+    try:
+        return _checkpoint_step(ckpt)
+    except UserError:
+        return 0
 
 
 class _StopAtStepEnd:
@@ -360,7 +446,11 @@ def _read_metrics(path: Path) -> list[dict[str, float]]:
     """metrics.jsonl rows; a torn last line (a crash mid-append) is dropped, its step is redone on resume."""
     if not path.exists():
         return []
-    lines = [ln for ln in path.read_text().splitlines() if ln.strip()]
+    try:
+        lines = [ln for ln in path.read_text(encoding="utf-8").splitlines() if ln.strip()]
+    except UnicodeDecodeError:
+        raise UserError(f"{path}: not UTF-8 text; the metrics file is damaged: restore it, or start a new run "
+                        "with another --out") from None
     rows = []
     for n, line in enumerate(lines, 1):
         try:
@@ -368,7 +458,8 @@ def _read_metrics(path: Path) -> list[dict[str, float]]:
         except json.JSONDecodeError:
             if n == len(lines):
                 break
-            raise UserError(f"{path}: line {n} is not valid JSON; the metrics file is damaged") from None
+            raise UserError(f"{path}: line {n} is not valid JSON; the metrics file is damaged: restore it, or start "
+                            "a new run with another --out") from None
     return rows
 
 
@@ -377,7 +468,11 @@ def _evaluate_once(path: Path, policy: Policy, prompts: list[str], scorer: Any, 
                    fresh: bool = False) -> evaluation.EvalResult:
     """Held-out evaluation, reused from disk on resume (before) so a resumed run reports the same numbers."""
     if path.exists() and not fresh:
-        return evaluation.read_samples(path)
+        try:
+            return evaluation.read_samples(path)
+        except (ValueError, KeyError, TypeError, IndexError) as exc:  # a damaged or hand-edited file
+            raise UserError(f"{path}: the saved {label}-training evaluation cannot be read ({exc}); it is damaged: "
+                            "delete it and resume, and the evaluation is done again") from None
     replies = len(prompts) * (cfg.evaluation.samples_per_prompt + 1)  # k samples and one greedy reply each
     with torch.random.fork_rng(devices=[]), console.progress(replies, f"evaluate {label}", "reply", quiet or not main) as bar:
         torch.manual_seed(cfg.run.seed + 7919)  # same sampling noise before and after: a paired design
@@ -389,19 +484,41 @@ def _evaluate_once(path: Path, policy: Policy, prompts: list[str], scorer: Any, 
     return result
 
 
+# keys that name or pace a run without changing its numbers; every other key must match on --resume
+NOT_RESULT_KEYS = {"run.name", "run.out", "run.checkpoint_every", "run.trackers", "run.tracker_dir"}
+
+
+def result_differences(saved: Experiment, cfg: Experiment) -> list[str]:
+    """'key: X in the run, Y now' for every key that changes a run's result and differs between the configs."""
+    def flat(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
+        out: dict[str, Any] = {}
+        for key, value in tree.items():
+            out.update(flat(value, f"{prefix}{key}.") if isinstance(value, dict) else {f"{prefix}{key}": value})
+        return out
+
+    old, new = flat(saved.model_dump(mode="json", exclude={"sweep"})), flat(cfg.model_dump(mode="json", exclude={"sweep"}))
+    keys = [k for k in dict.fromkeys([*old, *new]) if k not in NOT_RESULT_KEYS and old.get(k) != new.get(k)]
+    return [f"{k}: {old.get(k)!r} in the run, {new.get(k)!r} now" for k in keys]
+
+
 def run_from_cli(config_path: str, overrides: list[str], *, out: str | None, resume: str | None,
-                 force: bool, quiet: bool) -> int:
+                 force: bool, quiet: bool, overwrite: bool = False) -> int:
     cfg = load_config(config_path, overrides)
     if resume:
+        if out is not None and Path(out).resolve() != Path(resume).resolve():
+            raise UserError(f"--out {out} and --resume {resume} name different folders; a resumed run stays in "
+                            "its own folder, so give only --resume")
         saved = Path(resume) / "config.toml"
         if not saved.exists():
             raise UserError(f"--resume {resume}: no config.toml there; is it a run folder?")
-        if load_config(saved).model_dump(exclude={"run"}) != cfg.model_dump(exclude={"run"}):
-            raise UserError(f"--resume {resume}: {config_path} (with --set) differs from the run's saved config.toml; "
-                            "resume with the same config, or start a new run")
+        diff = result_differences(load_config(saved), cfg)
+        if diff:
+            raise UserError(f"--resume {resume}: {config_path} (with --set) differs from the run's saved config.toml "
+                            f"in {len(diff)} key(s) that change the result: {'; '.join(diff)}. Resume with the same "
+                            "config (--set KEY=VALUE to match), or start a new run with another --out")
         out = resume
     target = Path(out or cfg.run.out or Path("runs") / cfg.run.name)
-    report = run_experiment(cfg, target, resume=bool(resume), force=force, quiet=quiet)
+    report = run_experiment(cfg, target, resume=bool(resume), force=force, quiet=quiet, overwrite=overwrite)
     if report:
         print(evaluation.summary_text(report))
         print(f"\nrun folder: {target}")

@@ -20,7 +20,8 @@ from alignrun import compare, metrics
 from alignrun.cli import main
 from alignrun.config import Experiment, with_overrides
 from alignrun.errors import UserError
-from alignrun.report import RunFolder, build_report, write_json_atomic
+from alignrun.report import build_report
+from alignrun.runfolder import RunFolder, write_json_atomic
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (RFC 2083), section 3.1
 WORDS = "thanks order bike repair today tomorrow shop parts wheel chain ugh seriously".split()
@@ -341,7 +342,8 @@ def test_unknown_schema_and_missing_runs(tmp_path: Path, capsys: pytest.CaptureF
     with pytest.raises(UserError, match="no such folder"):
         compare.compare_cli([str(tmp_path / "nowhere")], fmt="table", plot_dir=None, report=None)
     RunFolder(tmp_path / "running").set_status("running", step=2)
-    with pytest.raises(UserError, match=r"running: the run has no report.json \(status: running\)"):
+    # no live process holds its lock, so the status reader calls it dead (alignrun.runfolder.read_status)
+    with pytest.raises(UserError, match=r"running: the run has no report.json \(status: dead, step 2; .*no process holds"):
         compare.compare_cli([str(tmp_path / "running")], fmt="table", plot_dir=None, report=None)
     del report["evaluation"]["per_prompt"]
     write_json_atomic(tmp_path / "cut" / "report.json", report)

@@ -391,6 +391,7 @@ def test_cli_config_show_prints_toml_that_loads_back(tmp_path, capsys):
 
 def test_cli_config_check_ok(tmp_path, capsys):
     path = write(tmp_path, "exp.toml", GOOD)
+    write(tmp_path, "prompts.jsonl", '{"prompt": "a"}\n')  # config check also checks that named files exist
     assert main(["config", "check", str(path)]) == 0
     assert capsys.readouterr().out.strip() == f"{path}: ok"
 

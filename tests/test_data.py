@@ -373,7 +373,11 @@ def test_explicit_heldout_file(tmp_path):
     held = csv_file(tmp_path / "held.csv", [{"prompt": p} for p in ["new one", "new two", "new one"]], ["prompt"])
     split = load_prompts(section(train, heldout=str(held), heldout_share=0.5), seed=7)
     assert split.train == many(6) and split.heldout == ["new one", "new two"]
-    assert split.source["heldout"]["duplicates"] == 1 and split.source["warnings"] == []
+    assert split.source["heldout"]["duplicates"] == 1
+    assert [w.split(": ", 1)[1] for w in split.source["warnings"]] == [  # one note per file with duplicates
+        "1 of 7 prompts dropped as exact duplicates; 6 distinct prompts are used",
+        "1 of 3 prompts dropped as exact duplicates; 2 distinct prompts are used"]
+    assert split.source["heldout_overlap"] == {"shared": 0, "of": 2, "share": 0.0}
     assert split.source["split"] == "explicit held-out file (data.heldout)"
 
 
@@ -382,7 +386,63 @@ def test_heldout_file_sharing_prompts_with_training_warns(tmp_path):
     held = jsonl(tmp_path / "held.jsonl", [{"prompt": many(6)[2]}, {"prompt": "fresh"}])
     split = load_prompts(section(train, heldout=str(held)), seed=0)
     assert split.heldout == [many(6)[2], "fresh"]
-    assert len(split.source["warnings"]) == 1 and "1 of 2 held-out prompts also appear" in split.source["warnings"][0]
+    assert len(split.source["warnings"]) == 1 and "1 of 2 held-out prompts (50%) also appear" in split.source["warnings"][0]
+    assert split.source["heldout_overlap"] == {"shared": 1, "of": 2, "share": 0.5}
+
+
+def test_heldout_file_identical_to_training_file_is_all_overlap(tmp_path):
+    train = make_jsonl(tmp_path, many(6))
+    split = load_prompts(section(train, heldout=str(train)), seed=0)
+    assert split.source["heldout_overlap"] == {"shared": 6, "of": 6, "share": 1.0}
+    assert "6 of 6 held-out prompts (100%) also appear in the training prompts" in split.source["warnings"][0]
+
+
+def test_overlap_ignores_case_and_spacing(tmp_path):
+    # the same prompt typed differently is still a leak (folding case and whitespace: common practice)
+    train = make_jsonl(tmp_path, ["Where is my bike?", "Brake pads squeal"])
+    held = jsonl(tmp_path / "held.jsonl", [{"prompt": "where  is my BIKE?"}, {"prompt": "Chain slips"}])
+    assert load_prompts(section(train, heldout=str(held)), seed=0).source["heldout_overlap"]["shared"] == 1
+
+
+def test_a_split_of_one_file_reports_no_overlap_and_catches_retyped_copies(tmp_path):
+    clean = load_prompts(section(make_jsonl(tmp_path, many(10))), seed=0)
+    assert clean.source["heldout_overlap"] == {"shared": 0, "of": 2, "share": 0.0} and clean.source["warnings"] == []
+    path = jsonl(tmp_path / "retyped.jsonl", [{"prompt": p} for p in many(10) + [m.upper() for m in many(10)]])
+    split = load_prompts(section(path, heldout_share=0.5), seed=0)  # 20 distinct strings, 10 prompts
+    assert split.source["heldout_overlap"]["shared"] > 0  # a prompt and its upper-case copy on both sides
+
+
+def test_forty_copies_of_one_prompt_are_counted(tmp_path):
+    path = make_jsonl(tmp_path, ["Fix my flat tyre"] * 40 + many(3))
+    split = load_prompts(section(path, heldout_share=0.3), seed=0)
+    assert sorted(split.train + split.heldout) == sorted(["Fix my flat tyre", *many(3)])
+    assert split.source["warnings"] == [
+        f"[data.prompts] {path}: 39 of 43 prompts dropped as exact duplicates; 4 distinct prompts are used"]
+
+
+def test_fewer_distinct_prompts_than_one_step_needs_warns(tmp_path):
+    path = make_jsonl(tmp_path, many(10))  # 8 train + 2 held out
+    short = load_prompts(section(path), seed=0, per_step=16)
+    assert short.source["warnings"] == [
+        "only 8 distinct training prompts but ppo.prompts_per_step = 16: every step repeats prompts, so the policy "
+        "learns from fewer examples than the step size suggests; add prompts or lower ppo.prompts_per_step"]
+    assert load_prompts(section(path), seed=0, per_step=8).source["warnings"] == []
+
+
+@pytest.mark.slow
+def test_overlap_is_on_screen_and_in_the_report(tmp_path, tiny_models, capsys):
+    from alignrun.cli import main
+    from tests import tiny_run
+
+    prompts = tiny_run.write_prompts(tmp_path / "prompts.jsonl")
+    body = tiny_run.tiny_config(tiny_models["t5"], prompts, steps=1)
+    body["data"]["heldout"] = str(prompts)  # the held-out file is the training file
+    config = tiny_run.write_config(tmp_path / "exp.toml", body)
+    assert main(["run", str(config), "--out", str(tmp_path / "run"), "--quiet"]) == 0
+    assert "warning: 24 of 24 held-out prompts (100%) also appear in the training prompts" in capsys.readouterr().out
+    data = json.loads((tmp_path / "run" / "report.json").read_text())["data"]
+    assert data["heldout_overlap"] == {"shared": 24, "of": 24, "share": 1.0}
+    assert any("100%" in w for w in data["warnings"])
 
 
 def test_skipped_rows_from_both_files_are_reported(tmp_path):

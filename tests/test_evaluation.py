@@ -13,7 +13,8 @@ from transformers import AutoModelForSeq2SeqLM
 from alignrun.config import BaseSection, Experiment, LoraSection, ReferenceSection
 from alignrun.evaluation import EvalResult, alarms, evaluate_policy, summarise, verdict
 from alignrun.models import build_policy, export_merged, save_adapter
-from alignrun.report import num, write_text_atomic
+from alignrun.report import num
+from alignrun.runfolder import write_text_atomic
 
 
 def _cfg(target: float | None = 2.0, **evaluation: float) -> Experiment:

@@ -11,7 +11,7 @@ from pathlib import Path
 import pytest
 
 from alignrun import compare, html_report
-from alignrun.report import write_json_atomic
+from alignrun.runfolder import write_json_atomic
 from tests.test_compare import PNG_SIGNATURE, make_run
 
 FETCHING_TAGS = {"script", "link", "iframe", "object", "embed", "audio", "video", "source", "base"}

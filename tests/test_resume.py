@@ -12,6 +12,7 @@ same seed), so the reference and the resumes run in-process to save interpreter 
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import re
@@ -33,7 +34,7 @@ from hypothesis import strategies as st
 import alignrun.trainer
 from alignrun.cli import main
 from alignrun.errors import UserError
-from alignrun.report import RunFolder
+from alignrun.runfolder import RunFolder, read_status
 from tests import tiny_run
 
 STEPS = 5
@@ -63,8 +64,14 @@ def checkpoint_step(run_dir: Path) -> int:
     return json.loads((run_dir / "checkpoint" / "checkpoint.json").read_text())["step"]
 
 
-def resume(config: Path, run_dir: Path) -> int:
-    return main(["run", str(config), "--resume", str(run_dir), "--quiet"])
+def resume(config: Path, run_dir: Path, *extra: str) -> int:
+    return main(["run", str(config), "--resume", str(run_dir), "--quiet", *extra])
+
+
+def hashes(folder: Path) -> dict[str, str]:
+    """SHA-256 of every file under folder, by relative path (folders listed too)."""
+    return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest() if p.is_file() else "folder"
+            for p in sorted(folder.rglob("*"))}
 
 
 def wait_for(condition: Callable[[], bool], child: subprocess.Popen, cwd: Path, timeout: float) -> None:
@@ -147,12 +154,16 @@ def copy_of(run_dir: Path, name: str) -> Path:
 
 @pytest.mark.slow
 @pytest.mark.parametrize("k", [1, 3])
-def test_sigkill_after_step_k_then_resume_is_exact(k: int, experiment, reference, killed) -> None:
+def test_sigkill_after_step_k_then_resume_is_exact(k: int, experiment, reference, killed, capsys) -> None:
     run_dir = copy_of(killed(k), f"resumed-{k}")
     assert not (run_dir / "report.json").exists()
     lock = json.loads((run_dir / ".lock").read_text())  # left behind by the killed process
     assert lock["host"] == socket.gethostname()
+    capsys.readouterr()
     assert resume(experiment.config, run_dir) == 0
+    said = capsys.readouterr().out
+    assert f"process {lock['pid']} on {lock['host']} is gone" in said  # the dead run is reported as such
+    assert f"training continues from step {k} (checkpoint/)" in said
     assert not (run_dir / ".lock").exists()  # the stale lock was cleared, then ours released
     assert status(run_dir)["state"] == "finished" and status(run_dir)["step"] == STEPS
     resumed, ref = training_numbers(run_dir), training_numbers(reference)
@@ -189,12 +200,139 @@ def test_resume_survives_a_torn_last_metrics_line(experiment, reference, killed,
 
 
 @pytest.mark.slow
-def test_resume_without_a_checkpoint_restarts_cleanly(experiment, reference, killed) -> None:
+def test_resume_without_a_checkpoint_restarts_cleanly(experiment, reference, killed, capsys) -> None:
     # the state of a run with run.checkpoint_every = 0 killed after step 3
     run_dir = copy_of(killed(3), "resumed-no-checkpoint")
     shutil.rmtree(run_dir / "checkpoint")
+    capsys.readouterr()
     assert resume(experiment.config, run_dir) == 0
+    assert "no checkpoint, so training restarts from step 0" in capsys.readouterr().out
     assert training_numbers(run_dir) == training_numbers(reference)
+
+
+# ------------------------------------------------------------------------- dead, finished, damaged
+
+
+@pytest.mark.slow
+def test_a_killed_run_reads_as_dead_in_status_and_compare(killed) -> None:
+    from alignrun import compare
+
+    run_dir = copy_of(killed(3), "dead")
+    assert status(run_dir)["state"] == "running"  # what the killed process last wrote
+    pid = json.loads((run_dir / ".lock").read_text())["pid"]
+    seen = read_status(run_dir)
+    assert seen is not None and seen["state"] == "dead" and seen["step"] == 3 and f"process {pid}" in seen["note"]
+    with pytest.raises(UserError, match=rf"status: dead, step 3; .*process {pid} .* is gone"):
+        compare.compare_cli([str(run_dir)], fmt="table", plot_dir=None, report=None)
+
+
+@pytest.mark.slow
+def test_resuming_a_finished_run_changes_nothing(experiment, reference, capsys) -> None:
+    run_dir = copy_of(reference, "finished-again")
+    before = hashes(run_dir)
+    capsys.readouterr()
+    assert resume(experiment.config, run_dir) == 0
+    said = capsys.readouterr().out
+    assert "already finished; nothing to resume, nothing changed" in said
+    assert hashes(run_dir) == before
+    # a different seed is refused, naming the key with both values, and changes nothing either
+    assert resume(experiment.config, run_dir, "--set", "run.seed=7") == 2
+    assert "run.seed: 0 in the run, 7 now" in capsys.readouterr().err
+    assert hashes(run_dir) == before
+
+
+@pytest.mark.slow
+def test_a_damaged_report_is_named_and_written_again_without_training(experiment, reference, capsys) -> None:
+    run_dir = copy_of(reference, "damaged-report")
+    (run_dir / "report.json").write_text('{"schema": "alignrun.rep')
+    metrics = hashes(run_dir)["metrics.jsonl"]
+    capsys.readouterr()
+    assert resume(experiment.config, run_dir) == 2
+    err = capsys.readouterr().err
+    assert f"{run_dir / 'report.json'}: report is not valid JSON" in err and "delete it" in err
+    (run_dir / "report.json").unlink()  # as the message says
+    assert resume(experiment.config, run_dir) == 0
+    assert f"training continues from step {STEPS}" in capsys.readouterr().out
+    assert hashes(run_dir)["metrics.jsonl"] == metrics  # no step was trained again
+    assert tiny_run.report_numbers(run_dir) == tiny_run.report_numbers(reference)
+
+
+@pytest.mark.slow
+def test_overwrite_replaces_the_run_and_keeps_other_files(experiment, reference) -> None:
+    run_dir = copy_of(reference, "overwritten")
+    (run_dir / "notes.txt").write_text("mine")
+    (run_dir / "status.json").unlink()  # still a run: recognised by its other files
+    tiny_run.reset_call_counts()
+    assert main(["run", str(experiment.config), "--out", str(run_dir), "--quiet"]) == 2
+    # the old run's files go before the new run starts: a new run that stops at the preflight leaves none behind
+    assert main(["run", str(experiment.config), "--out", str(run_dir), "--quiet", "--overwrite",
+                 "--set", f"reward.source={tiny_run.MODULE}:constant_harm"]) == 3
+    assert sorted(p.name for p in run_dir.iterdir()) == ["config.toml", "environment.json", "notes.txt",
+                                                         "preflight.json", "status.json"]
+    tiny_run.reset_call_counts()
+    assert main(["run", str(experiment.config), "--out", str(run_dir), "--quiet", "--overwrite"]) == 0
+    assert (run_dir / "notes.txt").read_text() == "mine"
+    assert status(run_dir)["state"] == "finished"
+    assert training_numbers(run_dir) == training_numbers(reference)
+
+
+@pytest.mark.slow
+def test_damaged_trainer_state_is_named_and_status_keeps_the_step(experiment, killed, capsys) -> None:
+    run_dir = copy_of(killed(3), "damaged-state")
+    state = run_dir / "checkpoint" / "trainer_state.pt"
+    state.write_bytes(state.read_bytes()[:200])  # truncated
+    capsys.readouterr()
+    assert resume(experiment.config, run_dir) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err and "internal error" not in err
+    assert f"{run_dir / 'checkpoint'}: the checkpoint" in err and "damaged" in err and f"delete {run_dir / 'checkpoint'}" in err
+    # not "failed, step 0": the run still stands at step 3, stopped
+    assert (status(run_dir)["state"], status(run_dir)["step"]) == ("interrupted", 3)
+    assert status(run_dir)["error"].startswith("resume failed:")
+
+
+@pytest.mark.slow
+def test_the_second_of_two_concurrent_runs_is_not_told_to_resume(experiment, tmp_path, capsys) -> None:
+    out = tmp_path / "busy"
+    child, cwd = start_held(experiment.config, out, hold_step=2)
+    try:
+        before = hashes(out)
+        capsys.readouterr()
+        for extra in ((), ("--overwrite",), ("--resume", str(out))):
+            assert main(["run", str(experiment.config), "--out", str(out), "--quiet", *extra]) == 2
+            err = capsys.readouterr().err
+            assert f"another alignrun process is writing this run folder (pid {child.pid}" in err
+            assert "--resume" not in err and "--overwrite" not in err
+        assert hashes(out) == before
+    finally:
+        child.kill()
+        child.wait()
+
+
+def test_run_files_follow_the_umask(tmp_path) -> None:
+    # atomic writes create files like open() does: 0666 minus the umask (common practice, POSIX creat)
+    from alignrun.runfolder import write_json_atomic, write_text_atomic
+
+    for mask in (0o022, 0o077, 0o002):
+        old = os.umask(mask)
+        try:
+            folder = tmp_path / f"m{mask:o}"
+            write_text_atomic(folder / "a.md", "x")
+            write_json_atomic(folder / "b.json", {"x": 1})
+            with RunFolder(folder):
+                lock_mode = (folder / ".lock").stat().st_mode & 0o777
+        finally:
+            os.umask(old)
+        assert {(folder / n).stat().st_mode & 0o777 for n in ("a.md", "b.json")} == {0o666 & ~mask}
+        assert lock_mode == 0o666 & ~mask
+
+
+@pytest.mark.slow
+def test_every_file_of_a_run_follows_the_umask(reference) -> None:
+    mask = os.umask(0)
+    os.umask(mask)
+    modes = {str(p.relative_to(reference)): p.stat().st_mode & 0o777 for p in reference.rglob("*") if p.is_file()}
+    assert modes and {name: oct(m) for name, m in modes.items() if m != 0o666 & ~mask} == {}
 
 
 @pytest.mark.slow
@@ -243,6 +381,29 @@ def test_sigint_marks_interrupted_and_resume_completes(interrupted) -> None:
 @pytest.mark.slow
 def test_sigint_then_resume_is_exact(interrupted, reference) -> None:
     out, _ = interrupted
+    assert training_numbers(out) == training_numbers(reference)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("stage, hold_step, step", [("before-training evaluation", 0, 0),
+                                                    ("after-training evaluation", STEPS + 1, STEPS)])
+def test_sigint_in_an_evaluation_tells_one_story(stage, hold_step, step, experiment, reference, capsys) -> None:
+    """Ctrl-C while the held-out set is scored (hold_step 0 holds the before-training evaluation's reward call,
+    STEPS + 1 the after-training one): the message, status.json and --resume agree."""
+    out = experiment.folder / f"sigint-{hold_step}"
+    child, cwd = start_held(experiment.config, out, hold_step=hold_step)
+    child.send_signal(signal.SIGINT)
+    assert child.wait(timeout=120) == 130
+    err = (cwd / "child.err").read_text()
+    assert "Traceback" not in err
+    assert f"interrupted during the {stage}; continue with: alignrun run CONFIG --resume {out} " \
+           f"(training resumes from step {step})" in err
+    assert (status(out)["state"], status(out)["step"], status(out)["stage"]) == ("interrupted", step, stage)
+    capsys.readouterr()
+    assert resume(experiment.config, out) == 0
+    said = capsys.readouterr().out
+    assert (f"training continues from step {step}" if step else "training restarts from step 0") in said
+    assert status(out)["state"] == "finished"
     assert training_numbers(out) == training_numbers(reference)
 
 
@@ -415,7 +576,8 @@ def _dead_pid() -> int:
 def test_lock_and_status_follow_a_simple_model(ops: list[tuple]) -> None:
     """Model: the lock is free, ours, or someone else's (live, dead, or on another host). Acquiring takes a
     free or dead lock and refuses the rest naming the owner's pid; release removes only our own lock;
-    status() returns the last state written; no temporary files are left."""
+    read_status returns the last state written, except "running" without a live writer, which reads "dead";
+    no temporary files are left."""
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "run"
         folder = RunFolder(path)
@@ -452,7 +614,10 @@ def test_lock_and_status_follow_a_simple_model(ops: list[tuple]) -> None:
             assert folder.locked == (lock == "ours")
             if lock == "ours":
                 assert json.loads((path / ".lock").read_text())["pid"] == os.getpid()
-            got = folder.status() if path.exists() else None
-            assert (got and (got["state"], got["step"])) == (last_status or None)
+            got = read_status(path) if path.exists() else None
+            expected = last_status
+            if expected and expected[0] == "running" and lock in (None, "dead"):
+                expected = ("dead", expected[1])  # a running status whose writer is gone reads as dead
+            assert (got and (got["state"], got["step"])) == (expected or None)
             if path.exists():
                 assert not [p for p in path.iterdir() if p.name.endswith(".tmp")]

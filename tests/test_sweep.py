@@ -16,7 +16,8 @@ import pytest
 from alignrun import sweep
 from alignrun.config import Experiment, load_config, to_toml
 from alignrun.errors import UserError
-from alignrun.report import SCHEMA, RunFolder, write_json_atomic, write_text_atomic
+from alignrun.report import SCHEMA
+from alignrun.runfolder import RunFolder, write_json_atomic, write_text_atomic
 
 REPO = Path(__file__).resolve().parents[1]
 BASE_TOML = """

@@ -13,18 +13,19 @@ DEMO_CONFIG = Path(alignrun.__file__).resolve().parent.parent / "configs" / "dem
 QUICK = ["ppo.steps=16", "evaluation.max_prompts=40", "evaluation.samples_per_prompt=2"]
 
 
-def run_demo(out: str | None, quick: bool, quiet: bool, overrides: list[str]) -> int:
+def run_demo(out: str | None, quick: bool, quiet: bool, overrides: list[str], overwrite: bool = False) -> int:
     from alignrun.config import load_config
     from alignrun.demo.build import build_demo
     from alignrun.evaluation import summary_text
-    from alignrun.trainer import run_experiment
+    from alignrun.trainer import check_run_folder, run_experiment
 
     if not DEMO_CONFIG.is_file():
         raise UserError(f"{DEMO_CONFIG}: the demo config is missing; run the demo from a checkout of the repository")
-    build_demo(quiet=quiet)
     cfg = load_config(DEMO_CONFIG, [*(QUICK if quick else []), *overrides])
     target = Path(out or cfg.run.out or Path("runs") / ("demo-quick" if quick else "demo"))
-    report = run_experiment(cfg, target, quiet=quiet)
+    check_run_folder(target, resume=False, overwrite=overwrite)  # before the models are built
+    build_demo(quiet=quiet)
+    report = run_experiment(cfg, target, quiet=quiet, overwrite=overwrite)
     print(summary_text(report))
     print("\nsample pairs (held-out prompt -> greedy reply before / after):")
     pairs = [json.loads(ln) for ln in (target / "pairs.jsonl").read_text().splitlines()]
