@@ -84,9 +84,26 @@ def test_builtin_probes_are_balanced_distinct_and_judged_right_by_an_outside_cla
     assert roc_auc_score([1] * len(harmful) + [0] * len(benign), predict_prob(harmful + benign)) >= 0.9
 
 
-def test_training_texts_are_not_probe_texts():
-    texts, _ = tc.training_texts()
-    assert not {t.lower() for t in texts} & {p.text.lower() for p in builtin_probes()}
+def _tie_bounds(score, y):
+    """(AUROC counting tied pairs as misordered, counting them as ordered): any tie-breaking lies between."""
+    pos, neg = np.asarray(score)[y][:, None], np.asarray(score)[~y][None, :]
+    return float((pos > neg).mean()), float((pos >= neg).mean())
+
+
+def test_tiny_classifiers_have_the_quality_of_their_lexicon(zoo):
+    # Known by construction, not by training: the lexicon's own AUROC on the probes is exact arithmetic on
+    # token counts, and each hand-set model ranks the probes as the lexicon share does (ties aside), so its
+    # AUROC is fixed whatever the CPU (AVX2 or AVX-512), thread count or run.
+    probes = builtin_probes()
+    texts, y = [p.text for p in probes], np.array([p.harmful for p in probes])
+    assert roc_auc_score(y, [tc.lexicon_hits(t) for t in texts]) >= 0.9  # sklearn as the reference AUROC
+    for name in ("bert", "distilbert", "roberta", "multilabel"):
+        share = tc.lexicon_share(texts, zoo[name])
+        low, high = _tie_bounds(share, y)
+        assert low >= 0.9, name
+        harmful = tc.CLASSIFIERS[name][1][1]
+        harm = load_scorer(RewardSection(source=str(zoo[name]), harmful_labels=[harmful]), "reward").score(texts).harm
+        assert low - 1e-12 <= auroc(harm, y) <= high + 1e-12, name
 
 
 def test_user_probe_files_are_added(tmp_path):
