@@ -80,6 +80,9 @@ class ScorerSection(Section):
     combine: Literal["max", "noisy-or"] = Field("max", description="how several harmful labels combine: max p, or 1 - prod(1 - p)")
     batch_size: int = Field(32, ge=1, le=4096)
     max_length: int = Field(0, ge=0, description="truncation length in tokens; 0 uses the classifier's own maximum")
+    min_auroc: float = Field(0.8, gt=0.5, le=1.0, description="polarity preflight: harm AUROC needed to call it ok")
+    min_separation: float = Field(0.3, gt=0, le=1.0, description="polarity preflight: mean P(harm) on harmful "
+                                  "probes minus on benign probes needed; below it the scores barely move")
 
     @model_validator(mode="after")
     def _one_way_to_name_harm(self) -> ScorerSection:
@@ -98,7 +101,6 @@ class RewardSection(ScorerSection):
     shift: float = 0.0
     clip: float | None = Field(None, gt=0, description="clip the reward to [-clip, clip] after scale and shift")
     probes: list[str] = Field(default_factory=list, description="extra probe files (JSONL with text and harmful)")
-    min_auroc: float = Field(0.8, gt=0.5, le=1.0, description="polarity preflight: AUROC needed to call the reward ok")
 
 
 class KLSection(Section):

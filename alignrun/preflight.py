@@ -1,12 +1,14 @@
 """Preflight: does the reward point the right way? Score labelled probes and give a polarity verdict.
 
 The reward classifier scores the built-in probes (alignrun/resources/probes.jsonl) plus any files in
-`reward.probes`. Its harm score must rank harmful probes above benign ones (AUROC >= reward.min_auroc),
-and the transformed reward must rank benign probes above harmful ones. Verdicts:
+`reward.probes`. Its harm score must rank harmful probes above benign ones (AUROC >= reward.min_auroc, with
+a 95% interval that excludes chance) AND move: mean P(harm) on harmful probes at least reward.min_separation
+above benign ones. The transformed reward must rank benign probes above harmful ones. Verdicts:
 
-    ok             both hold
+    ok             all of that holds
+    weak           harm points the right way (interval above 0.5, enough separation) but AUROC < min_auroc
     inverted       harm ranks benign probes higher: the wrong label is named harmful
-    uninformative  harm does not separate the probes (AUROC near 0.5, or constant scores)
+    uninformative  harm scores barely move (separation < min_separation), or rank no better than chance
     sign-wrong     harm separates, but the transform/scale/clip makes benign texts score lower
 """
 
@@ -29,6 +31,8 @@ from alignrun.reward import Scorer, describe_transform, load_scorer, reward_from
 
 PROBE_ROW = '{"text": "...", "harmful": true} or {"text": "...", "harmful": false}'
 EXIT_POLARITY = 3
+Z95 = 1.959963984540054  # two-sided 95% normal quantile, scipy.stats.norm.ppf(0.975)
+TOLERANCE = 1e-9  # AUROC comparisons: 1 - 0.8 is 0.19999999999999996 in floating point
 
 
 @dataclass
@@ -48,10 +52,13 @@ class ProbeScore:
 
 @dataclass
 class PolarityReport:
-    verdict: str  # ok | inverted | uninformative | sign-wrong
+    verdict: str  # ok | weak | inverted | uninformative | sign-wrong
     message: str
     auroc: float  # AUROC of P(harm) for harmful vs benign probes
+    auroc_se: float  # its standard error (Hanley & McNeil 1982)
+    auroc_interval: tuple[float, float]  # 95% normal interval, auroc +- 1.96 se, within [0, 1]
     gap: float  # mean P(harm) on harmful probes minus on benign probes
+    min_separation: float  # |gap| below this: the scores barely move ("uninformative")
     reward_auroc: float  # AUROC of the reward for benign vs harmful probes (benign should be higher)
     reward_gap: float  # mean reward on benign probes minus on harmful probes
     min_auroc: float  # both AUROCs must reach this for "ok"
@@ -123,6 +130,28 @@ def auroc(scores: Sequence[float] | np.ndarray, positive: Sequence[bool] | np.nd
     return float(u / (n1 * n0))  # Hanley & McNeil 1982: AUROC = U / (n1 * n0)
 
 
+def auroc_se(a: float, n1: int, n2: int) -> float:
+    """Standard error of an AUROC a from n1 positives and n2 negatives (Hanley & McNeil 1982, eq. 2)."""
+    q1, q2 = a / (2 - a), 2 * a * a / (1 + a)  # Hanley & McNeil 1982: Q1 = A/(2-A), Q2 = 2A^2/(1+A)
+    var = (a * (1 - a) + (n1 - 1) * (q1 - a * a) + (n2 - 1) * (q2 - a * a)) / (n1 * n2)
+    return float(np.sqrt(max(var, 0.0)))
+
+
+def harm_verdict(a: float, interval: tuple[float, float], gap: float, min_auroc: float,
+                 min_separation: float) -> str:
+    """ok | weak | inverted | uninformative from the harm score's AUROC, its 95% interval and its separation."""
+    low, high = interval
+    if abs(gap) < min_separation:
+        return "uninformative"  # the scores barely move, whatever their order
+    if a >= min_auroc - TOLERANCE and low > 0.5 and gap > 0:
+        return "ok"
+    if gap < 0 and (a <= 1 - min_auroc + TOLERANCE or high < 0.5):
+        return "inverted"
+    if low > 0.5 and gap > 0:
+        return "weak"
+    return "uninformative"
+
+
 def _inverted_fix(section: RewardSection, label_aurocs: dict[str, float],
                   harmful: list[str]) -> tuple[str, str | None]:
     """(a sentence saying what would be correct, the exact config change or None) for an inverted harm score."""
@@ -163,44 +192,59 @@ def check_polarity(scorer: Scorer, section: RewardSection) -> PolarityReport:
     scores = scorer.score([p.text for p in probes])
     reward = reward_from_scores(scores, section)
     harm = scores.harm
+    n1, n0 = int(y.sum()), int((~y).sum())
     a, ra = auroc(harm, y), auroc(reward, ~y)
+    se = auroc_se(a, n1, n0)
+    interval = (max(0.0, a - Z95 * se), min(1.0, a + Z95 * se))
     gap = float(harm[y].mean() - harm[~y].mean())
     reward_gap = float(reward[~y].mean() - reward[y].mean())
     probs = scores.class_probabilities()
     label_aurocs = {name: auroc(probs[:, j], y) for j, name in enumerate(scores.labels)}
     harmful_names = [scores.labels[j] for j in scores.harmful]
-    m = section.min_auroc
-    numbers = f"harm AUROC {a:.3f} (needs >= {m:g}), mean harm gap {gap:+.3f}, reward AUROC {ra:.3f}"
+    m, sep = section.min_auroc, section.min_separation
+    numbers = (f"harm AUROC {a:.3f}, 95% interval [{interval[0]:.3f}, {interval[1]:.3f}] (ok at >= {m:g}); "
+               f"mean harm gap {gap:+.3f} (needs >= {sep:g}); reward AUROC {ra:.3f}")
     transform = describe_transform(section)
     suggestion = None
-    if a >= m and ra >= m:
-        verdict = "ok"
-        message = ("The reward points the right way: harmful probes get higher harm and benign probes higher "
-                   f"reward ({numbers}).")
-    elif a >= m:
+    verdict = harm_verdict(a, interval, gap, m, sep)
+    if verdict == "ok" and ra < m - TOLERANCE:
         verdict = "sign-wrong"
         suggestion = _sign_fix(section)
         message = (f"The classifier separates the probes, but the reward does not rank benign texts above harmful "
                    f"ones ({numbers}): {transform} makes benign texts score lower or equal, so training would "
                    f"push towards harm. Set {suggestion}.")
-    elif a <= 1 - m:
-        verdict = "inverted"
+    elif verdict == "ok":
+        message = ("The reward points the right way: harmful probes get higher harm and benign probes higher "
+                   f"reward ({numbers}).")
+    elif verdict == "inverted":
         fix, suggestion = _inverted_fix(section, label_aurocs, harmful_names)
         message = (f"The harm score is inverted: harmful probes get a LOWER {_harm_text(harmful_names)} than benign "
                    f"ones ({numbers}), so what is named harmful behaves like the benign class and training would "
                    f"reward harm. {fix}")
+    elif verdict == "weak":
+        lowered = np.floor(a * 100) / 100
+        suggestion = f"reward.min_auroc = {lowered:.2f}"
+        message = (f"The classifier points the right way but is weak ({numbers}): it ranks harmful probes above "
+                   "benign ones less often than reward.min_auroc asks, so training would lower only the harm it "
+                   f"can see. Use a stronger classifier, or accept this one deliberately: set {suggestion}.")
+    elif np.ptp(harm) == 0:
+        message = (f"The reward is uninformative: every probe gets the same harm score {harm[0]:.4g}. Training "
+                   "against it would learn nothing; use a classifier trained for this kind of harm, or check "
+                   "reward.harmful_labels and reward.source.")
+    elif abs(gap) < sep:
+        message = (f"The reward is uninformative: the harm scores barely move ({numbers}; every P(harm) lies in "
+                   f"[{harm.min():.3f}, {harm.max():.3f}]). An untrained or freshly initialised classification "
+                   "head looks like this, whatever its AUROC; use a classifier trained for this kind of harm. "
+                   "If its scores are known to be compressed on purpose, lower reward.min_separation.")
     else:
-        verdict = "uninformative"
-        if np.ptp(harm) == 0:
-            why = f"every probe gets the same harm score {harm[0]:.4g}"
-        else:
-            why = f"the classifier does not separate harmful from benign probes ({numbers})"
-        message = (f"The reward is uninformative: {why}. Training against it would be wasted; use a classifier "
-                   "trained for this kind of harm, or check reward.harmful_labels and reward.source.")
+        message = (f"The reward is uninformative: its ranking of harmful and benign probes is not clearly better "
+                   f"than chance ({numbers}); use a classifier trained for this kind of harm, or check "
+                   "reward.harmful_labels and reward.source.")
     return PolarityReport(
-        verdict=verdict, message=message, auroc=a, gap=gap, reward_auroc=ra, reward_gap=reward_gap, min_auroc=m,
-        inverted_below=round(1 - m, 9), scorer=scorer.description, executes_code=scorer.executes_code, transform=transform,
-        label_aurocs=label_aurocs, suggestion=suggestion, n_harmful=int(y.sum()), n_benign=int((~y).sum()),
+        verdict=verdict, message=message, auroc=a, auroc_se=se, auroc_interval=interval, gap=gap,
+        min_separation=sep, reward_auroc=ra, reward_gap=reward_gap, min_auroc=m,
+        inverted_below=round(1 - m, 9), scorer=scorer.description, executes_code=scorer.executes_code,
+        transform=transform, label_aurocs=label_aurocs, suggestion=suggestion, n_harmful=n1, n_benign=n0,
         probe_files=["built-in", *section.probes],
         probes=[ProbeScore(p.text, p.harmful, float(h), float(r)) for p, h, r in zip(probes, harm, reward, strict=True)],
     )
@@ -234,9 +278,11 @@ def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path
               "(module import or pickle); use only sources you trust")
     print(f"transform: {report.transform}")
     print(f"probes: {report.n_harmful} harmful, {report.n_benign} benign ({', '.join(report.probe_files)})")
-    print(f"harm AUROC {report.auroc:.3f} (ok at >= {report.min_auroc:g}, inverted at <= {report.inverted_below:g}), "
-          f"mean harm gap {report.gap:+.3f}; reward AUROC {report.reward_auroc:.3f}, "
-          f"reward gap {report.reward_gap:+.3f}")
+    low, high = report.auroc_interval
+    print(f"harm AUROC {report.auroc:.3f}, 95% interval [{low:.3f}, {high:.3f}] (Hanley & McNeil 1982 SE "
+          f"{report.auroc_se:.4f}; ok at >= {report.min_auroc:g}, inverted at <= {report.inverted_below:g}), "
+          f"mean harm gap {report.gap:+.3f} (needs >= {report.min_separation:g}); "
+          f"reward AUROC {report.reward_auroc:.3f}, reward gap {report.reward_gap:+.3f}")
     print(f"verdict: {report.verdict}")
     print(report.message)
     params = None

