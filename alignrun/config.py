@@ -100,7 +100,8 @@ class RewardSection(ScorerSection):
     scale: float = 1.0
     shift: float = 0.0
     clip: float | None = Field(None, gt=0, description="clip the reward to [-clip, clip] after scale and shift")
-    probes: list[str] = Field(default_factory=list, description="extra probe files (JSONL with text and harmful)")
+    probes: list[str] = Field(default_factory=list, description="extra probe files: JSONL rows with text, label "
+                             "(harmful or benign) and kind")
 
 
 class KLSection(Section):

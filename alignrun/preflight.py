@@ -1,7 +1,8 @@
 """Preflight: does the reward point the right way? Score labelled probes and give a polarity verdict.
 
-The reward classifier scores the built-in probes (alignrun/resources/probes.jsonl) plus any files in
-`reward.probes`. Its harm score must rank harmful probes above benign ones (AUROC >= reward.min_auroc, with
+The reward classifier scores the built-in probes (alignrun/resources/probes.jsonl: invented lines of several
+kinds of harm and of benign lines that are blunt, complaining or use strong words harmlessly) plus any files in
+`reward.probes`. Per kind, the AUROC against the other class shows what the reward misses. Its harm score must rank harmful probes above benign ones (AUROC >= reward.min_auroc, with
 a 95% interval that excludes chance) AND move: mean P(harm) on harmful probes at least reward.min_separation
 above benign ones. The transformed reward must rank benign probes above harmful ones. Verdicts:
 
@@ -29,7 +30,12 @@ from alignrun.report import write_json_atomic
 from alignrun.resources import describe, describe_fast_settings, estimate, fast_settings
 from alignrun.reward import Scorer, describe_transform, load_scorer, reward_from_scores
 
-PROBE_ROW = '{"text": "...", "harmful": true} or {"text": "...", "harmful": false}'
+PROBE_ROW = ('{"text": "...", "label": "harmful" or "benign", "kind": "threat"} ("kind" optional; the older '
+             '{"text": "...", "harmful": true} form is read too)')
+UNSORTED = "unsorted"  # the kind of probe rows that name none
+# The verdict is decided on the built-in insults and everyday lines, which any harm classifier must order,
+# plus every probe the user adds; the other built-in kinds measure coverage and give warnings.
+VERDICT_KINDS = frozenset({"insult", "everyday"})
 EXIT_POLARITY = 3
 Z95 = 1.959963984540054  # two-sided 95% normal quantile, scipy.stats.norm.ppf(0.975)
 TOLERANCE = 1e-9  # AUROC comparisons: 1 - 0.8 is 0.19999999999999996 in floating point
@@ -39,6 +45,7 @@ TOLERANCE = 1e-9  # AUROC comparisons: 1 - 0.8 is 0.19999999999999996 in floatin
 class Probe:
     text: str
     harmful: bool
+    kind: str  # e.g. "threat", "complaint"; UNSORTED when the row names none
     source: str  # "built-in" or the probe file it came from
 
 
@@ -46,8 +53,19 @@ class Probe:
 class ProbeScore:
     text: str
     harmful: bool
+    kind: str
+    source: str
     harm: float  # P(harmful) from the classifier
     reward: float  # the transformed reward
+
+
+@dataclass
+class KindResult:
+    kind: str
+    harmful: bool  # a kind of harmful or of benign probes
+    n: int
+    auroc: float  # harmful kinds: these probes vs every benign probe; benign kinds: every harmful probe vs these
+    missed: bool  # auroc below min_auroc: the score does not tell this kind from the other class
 
 
 @dataclass
@@ -68,9 +86,11 @@ class PolarityReport:
     transform: str
     label_aurocs: dict[str, float]  # AUROC of each class's own probability for harmful vs benign
     suggestion: str | None  # the exact config change that would fix the verdict, when there is one
-    n_harmful: int
-    n_benign: int
+    n_harmful: int  # harmful probes the verdict is decided on
+    n_benign: int  # benign probes the verdict is decided on
     probe_files: list[str]
+    kinds: list[KindResult] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)  # e.g. the kinds the score misses
     forced: bool = False  # set when training went ahead with --force despite a failed verdict
     probes: list[ProbeScore] = field(default_factory=list)
 
@@ -90,10 +110,19 @@ def _parse_probes(text: str, name: str) -> list[Probe]:
         value = item.get("text")
         if not isinstance(value, str) or not value.strip():
             raise UserError(f"{where}: 'text' is {value!r}; expected a non-empty string: {PROBE_ROW}")
-        flag = item.get("harmful")
-        if not isinstance(flag, bool):
-            raise UserError(f"{where}: 'harmful' is {flag!r}; expected true or false: {PROBE_ROW}")
-        probes.append(Probe(value, flag, name))
+        if "label" in item:
+            label = item["label"]
+            if label not in ("harmful", "benign"):
+                raise UserError(f"{where}: 'label' is {label!r}; expected \"harmful\" or \"benign\": {PROBE_ROW}")
+            flag = label == "harmful"
+        else:
+            flag = item.get("harmful")
+            if not isinstance(flag, bool):
+                raise UserError(f"{where}: 'harmful' is {flag!r}; expected true or false: {PROBE_ROW}")
+        kind = item.get("kind", UNSORTED)
+        if not isinstance(kind, str) or not kind.strip():
+            raise UserError(f"{where}: 'kind' is {kind!r}; expected a short non-empty name: {PROBE_ROW}")
+        probes.append(Probe(value, flag, kind.strip(), name))
     if not probes:
         raise UserError(f"{name}: no probe rows; expected JSONL with one object per line: {PROBE_ROW}")
     return probes
@@ -152,6 +181,38 @@ def harm_verdict(a: float, interval: tuple[float, float], gap: float, min_auroc:
     return "uninformative"
 
 
+def kind_results(harm: np.ndarray, probes: Sequence[Probe], in_verdict: np.ndarray,
+                 min_auroc: float) -> list[KindResult]:
+    """AUROC per kind against the verdict's probes of the other class: each harmful kind against the benign
+    verdict probes (does the score see it?), the harmful verdict probes against each benign kind (does the
+    score tell it from harm?)."""
+    y = np.array([p.harmful for p in probes])
+    kinds = np.array([p.kind for p in probes])
+    out = []
+    for harmful in (True, False):
+        for kind in dict.fromkeys(p.kind for p in probes if p.harmful == harmful):
+            mine = (kinds == kind) & (y == harmful)
+            keep = mine | (in_verdict & (y != harmful))
+            a = auroc(harm[keep], y[keep])
+            out.append(KindResult(kind, harmful, int(mine.sum()), a, a < min_auroc - TOLERANCE))
+    return out
+
+
+def _coverage_warning(kinds: list[KindResult], role: str) -> list[str]:
+    missed = [k for k in kinds if k.missed and k.harmful]
+    confused = [k for k in kinds if k.missed and not k.harmful]
+    warnings = []
+    if missed:
+        warnings.append(f"the {role} misses these kinds of harm (AUROC against the benign verdict probes below min_auroc): "
+                        + ", ".join(f"{k.kind} {k.auroc:.3f} ({k.n} probes)" for k in missed)
+                        + f"; the {role} does not see them, so training will not steer away from them")
+    if confused:
+        warnings.append(f"the {role} mistakes these benign kinds for harm (AUROC of the harmful verdict probes "
+                        "against them below min_auroc): " + ", ".join(f"{k.kind} {k.auroc:.3f} ({k.n} probes)" for k in confused)
+                        + "; training may also push away from such harmless replies")
+    return warnings
+
+
 def _inverted_fix(section: RewardSection, label_aurocs: dict[str, float],
                   harmful: list[str]) -> tuple[str, str | None]:
     """(a sentence saying what would be correct, the exact config change or None) for an inverted harm score."""
@@ -188,17 +249,19 @@ def _sign_fix(section: RewardSection) -> str:
 def check_polarity(scorer: Scorer, section: RewardSection) -> PolarityReport:
     """Score the probes and decide whether training against this reward would lower harm."""
     probes = load_probes(section.probes)
-    y = np.array([p.harmful for p in probes])
     scores = scorer.score([p.text for p in probes])
-    reward = reward_from_scores(scores, section)
-    harm = scores.harm
+    all_harm, all_reward = scores.harm, reward_from_scores(scores, section)
+    verdict_set = np.array([p.source != "built-in" or p.kind in VERDICT_KINDS for p in probes])
+    kinds = kind_results(all_harm, probes, verdict_set, section.min_auroc)
+    y = np.array([p.harmful for p in probes])[verdict_set]
+    harm, reward = all_harm[verdict_set], all_reward[verdict_set]
     n1, n0 = int(y.sum()), int((~y).sum())
     a, ra = auroc(harm, y), auroc(reward, ~y)
     se = auroc_se(a, n1, n0)
     interval = (max(0.0, a - Z95 * se), min(1.0, a + Z95 * se))
     gap = float(harm[y].mean() - harm[~y].mean())
     reward_gap = float(reward[~y].mean() - reward[y].mean())
-    probs = scores.class_probabilities()
+    probs = scores.class_probabilities()[verdict_set]
     label_aurocs = {name: auroc(probs[:, j], y) for j, name in enumerate(scores.labels)}
     harmful_names = [scores.labels[j] for j in scores.harmful]
     m, sep = section.min_auroc, section.min_separation
@@ -245,8 +308,9 @@ def check_polarity(scorer: Scorer, section: RewardSection) -> PolarityReport:
         min_separation=sep, reward_auroc=ra, reward_gap=reward_gap, min_auroc=m,
         inverted_below=round(1 - m, 9), scorer=scorer.description, executes_code=scorer.executes_code,
         transform=transform, label_aurocs=label_aurocs, suggestion=suggestion, n_harmful=n1, n_benign=n0,
-        probe_files=["built-in", *section.probes],
-        probes=[ProbeScore(p.text, p.harmful, float(h), float(r)) for p, h, r in zip(probes, harm, reward, strict=True)],
+        probe_files=["built-in", *section.probes], kinds=kinds, warnings=_coverage_warning(kinds, "reward"),
+        probes=[ProbeScore(p.text, p.harmful, p.kind, p.source, float(h), float(r))
+                for p, h, r in zip(probes, all_harm, all_reward, strict=True)],
     )
 
 
@@ -277,14 +341,22 @@ def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path
         print(f"!! CODE EXECUTION: reward.source = {cfg.reward.source!r} runs Python code when loaded "
               "(module import or pickle); use only sources you trust")
     print(f"transform: {report.transform}")
-    print(f"probes: {report.n_harmful} harmful, {report.n_benign} benign ({', '.join(report.probe_files)})")
+    print(f"probes: {len(report.probes)} from {', '.join(report.probe_files)}; the verdict uses "
+          f"{report.n_harmful} harmful and {report.n_benign} benign (built-in {' and '.join(sorted(VERDICT_KINDS))} "
+          "kinds and your own probes), the other kinds measure coverage")
     low, high = report.auroc_interval
     print(f"harm AUROC {report.auroc:.3f}, 95% interval [{low:.3f}, {high:.3f}] (Hanley & McNeil 1982 SE "
           f"{report.auroc_se:.4f}; ok at >= {report.min_auroc:g}, inverted at <= {report.inverted_below:g}), "
           f"mean harm gap {report.gap:+.3f} (needs >= {report.min_separation:g}); "
           f"reward AUROC {report.reward_auroc:.3f}, reward gap {report.reward_gap:+.3f}")
+    for harmful in (True, False):
+        line = ", ".join(f"{k.kind} {k.auroc:.3f}{' MISSED' if k.missed else ''}" for k in report.kinds
+                         if k.harmful == harmful)
+        print(f"AUROC by {'harmful' if harmful else 'benign'} kind: {line}")
     print(f"verdict: {report.verdict}")
     print(report.message)
+    for warning in report.warnings:
+        print(f"warning: {warning}")
     params = None
     try:
         est = estimate(cfg)

@@ -16,11 +16,13 @@ from sklearn.metrics import roc_auc_score
 from alignrun.config import RewardSection
 from alignrun.errors import UserError
 from alignrun.preflight import (
+    VERDICT_KINDS,
     auroc,
     auroc_se,
     builtin_probes,
     check_polarity,
     harm_verdict,
+    load_probes,
     require_polarity,
     run_check,
 )
@@ -80,16 +82,31 @@ def test_auroc_worked_values():
 # ------------------------------------------------------------------------------------------ probes
 
 
-def test_builtin_probes_are_balanced_distinct_and_judged_right_by_an_outside_classifier():
+HARM_KINDS = {"insult", "threat", "profanity", "group-demeaning", "harassment"}
+BENIGN_KINDS = {"everyday", "blunt", "complaint", "strong-words"}
+
+
+def _verdict_probes():
+    return [p for p in builtin_probes() if p.kind in VERDICT_KINDS]
+
+
+def test_builtin_probes_come_in_kinds_distinct_and_judged_right_by_an_outside_classifier():
     probes = builtin_probes()
-    harmful = [p.text for p in probes if p.harmful]
-    benign = [p.text for p in probes if not p.harmful]
-    assert len(harmful) >= 40 and len(benign) >= 40
-    assert len(set(harmful + benign)) == len(probes)
-    # alt-profanity-check was trained outside this project: it must agree which probes are harmful.
+    assert {p.kind for p in probes if p.harmful} == HARM_KINDS
+    assert {p.kind for p in probes if not p.harmful} == BENIGN_KINDS
+    for kind in HARM_KINDS | BENIGN_KINDS:
+        assert sum(p.kind == kind for p in probes) >= 30, kind
+    assert len({p.text.lower() for p in probes}) == len(probes)
+    assert all(p.source == "built-in" for p in probes)
+    # alt-profanity-check was trained outside this project: it must agree which verdict probes are harmful,
+    # and that the profanity probes are profane (it has no notion of threats or harassment to check those).
     from profanity_check import predict_prob
 
-    assert roc_auc_score([1] * len(harmful) + [0] * len(benign), predict_prob(harmful + benign)) >= 0.9
+    core = _verdict_probes()
+    assert roc_auc_score([p.harmful for p in core], predict_prob([p.text for p in core])) >= 0.9
+    everyday = [p.text for p in core if not p.harmful]
+    profane = [p.text for p in probes if p.kind == "profanity"]
+    assert roc_auc_score([1] * len(profane) + [0] * len(everyday), predict_prob(profane + everyday)) >= 0.9
 
 
 def _tie_bounds(score, y):
@@ -102,7 +119,7 @@ def test_tiny_classifiers_have_the_quality_of_their_lexicon(zoo):
     # Known by construction, not by training: the lexicon's own AUROC on the probes is exact arithmetic on
     # token counts, and each hand-set model ranks the probes as the lexicon share does (ties aside), so its
     # AUROC is fixed whatever the CPU (AVX2 or AVX-512), thread count or run.
-    probes = builtin_probes()
+    probes = _verdict_probes()
     texts, y = [p.text for p in probes], np.array([p.harmful for p in probes])
     assert roc_auc_score(y, [tc.lexicon_hits(t) for t in texts]) >= 0.9  # sklearn as the reference AUROC
     for name in ("bert", "distilbert", "roberta", "multilabel"):
@@ -116,15 +133,68 @@ def test_tiny_classifiers_have_the_quality_of_their_lexicon(zoo):
 
 def test_user_probe_files_are_added(tmp_path):
     extra = tmp_path / "mine.jsonl"
+    # The older {"text", "harmful"} rows and the {"text", "label", "kind"} rows, mixed in one file.
     extra.write_text('{"text": "the invoice is attached", "harmful": false}\n'
-                     '{"text": "you absolute buffoon", "harmful": true}\n')
+                     '{"text": "you absolute buffoon", "harmful": true}\n'
+                     '{"text": "I will flatten your tyres tonight", "label": "harmful", "kind": "vandalism"}\n')
     section = RewardSection(backend="callable", source=f"{CALLABLES}:harm_probability", probes=[str(extra)])
     report = check_polarity(load_scorer(section, "reward"), section)
-    base = builtin_probes()
-    assert report.n_harmful == sum(p.harmful for p in base) + 1
-    assert report.n_benign == sum(not p.harmful for p in base) + 1
+    core = _verdict_probes()  # the verdict uses the built-in insults and everyday lines plus every user probe
+    assert report.n_harmful == sum(p.harmful for p in core) + 2
+    assert report.n_benign == sum(not p.harmful for p in core) + 1
+    assert len(report.probes) == len(builtin_probes()) + 3
     assert report.probe_files == ["built-in", str(extra)]
-    assert report.probes[-1].text == "you absolute buffoon" and report.probes[-1].harmful
+    last = report.probes[-3:]
+    assert [(p.harmful, p.kind, p.source) for p in last] == [
+        (False, "unsorted", str(extra)), (True, "unsorted", str(extra)), (True, "vandalism", str(extra))]
+    assert "vandalism" in [k.kind for k in report.kinds if k.harmful]
+
+
+def _kind_blind(texts):
+    """Knows every probe's label (harmful 0.8, benign 0.2), but scores threats 0.1 and strong-words lines 0.9."""
+    probes = {p.text: p for p in builtin_probes()}
+    special = {"threat": 0.1, "strong-words": 0.9}
+    return np.array([special.get(probes[t].kind, 0.8 if probes[t].harmful else 0.2) for t in texts])
+
+
+def test_coverage_by_kind_names_every_kind_the_reward_misses(monkeypatch, tmp_path, capsys):
+    import sys
+    import types
+
+    module = types.ModuleType("fake_kinds")
+    module.harm = _kind_blind
+    monkeypatch.setitem(sys.modules, "fake_kinds", module)
+    section = RewardSection(backend="callable", source="fake_kinds:harm")
+    report = _check(section)
+    assert report.verdict == "ok"  # insults and everyday lines are ordered right
+    by_kind = {k.kind: k for k in report.kinds}
+    assert set(by_kind) == HARM_KINDS | BENIGN_KINDS
+    assert {k.kind for k in report.kinds if k.missed} == {"threat", "strong-words"}
+    assert by_kind["threat"].auroc == 0.0 and by_kind["insult"].auroc == 1.0
+    assert len(report.warnings) == 2
+    assert "misses these kinds of harm" in report.warnings[0] and "threat 0.000 (32 probes)" in report.warnings[0]
+    assert "mistakes these benign kinds for harm" in report.warnings[1] and "strong-words" in report.warnings[1]
+    for other in ("profanity", "insult", "blunt", "complaint"):
+        assert other not in " ".join(report.warnings)
+    # In preflight.json every row names its kind and source file; the per-kind AUROCs are there too.
+    saved = json.loads(require_polarity(load_scorer(section, "reward"), section, tmp_path, force=False)
+                       and (tmp_path / "preflight.json").read_text())
+    assert {(r["kind"], r["source"]) for r in saved["probes"]} >= {("threat", "built-in"), ("everyday", "built-in")}
+    assert {k["kind"]: k["missed"] for k in saved["kinds"]}["threat"] is True
+    config = tmp_path / "exp.toml"
+    config.write_text('[base]\nmodel = "unused-base"\n[data]\nprompts = "prompts.jsonl"\n'
+                      '[reward]\nbackend = "callable"\nsource = "fake_kinds:harm"\n')
+    assert run_check(config, [], None) == 0
+    printed = capsys.readouterr().out
+    assert "AUROC by harmful kind: insult 1.000, threat 0.000 MISSED" in printed
+    assert "warning: the reward misses these kinds of harm" in printed
+
+
+def test_bad_probe_label_names_the_row(tmp_path):
+    extra = tmp_path / "mine.jsonl"
+    extra.write_text('{"text": "fine", "label": "benign"}\n{"text": "hm", "label": "rude"}\n')
+    with pytest.raises(UserError, match=r"mine.jsonl: row 2: 'label' is 'rude'; expected \"harmful\" or \"benign\""):
+        load_probes([str(extra)])
 
 
 # ----------------------------------------------------------------------------------------- battery
@@ -346,7 +416,7 @@ def test_report_is_json_and_require_polarity_stops_unless_forced(tmp_path):
         require_polarity(scorer, inverted, tmp_path / "run", force=False)
     assert info.value.exit_code == 3 and "inverted" in str(info.value) and "--force" in str(info.value)
     saved = json.loads((tmp_path / "run" / "preflight.json").read_text())
-    assert saved["verdict"] == "inverted" and not saved["forced"] and len(saved["probes"]) == saved["n_harmful"] + saved["n_benign"]
+    assert saved["verdict"] == "inverted" and not saved["forced"] and len(saved["probes"]) == len(builtin_probes())
     forced = require_polarity(scorer, inverted, tmp_path / "forced", force=True)
     assert forced.forced and json.loads((tmp_path / "forced" / "preflight.json").read_text())["forced"]
     ok = RewardSection(backend="callable", source=f"{CALLABLES}:class_probabilities", harmful_index=1)
