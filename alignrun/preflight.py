@@ -24,7 +24,7 @@ from pathlib import Path
 import numpy as np
 from scipy.stats import rankdata
 
-from alignrun.config import RewardSection, load_config
+from alignrun.config import RewardSection, ScorerSection, load_config
 from alignrun.errors import UserError
 from alignrun.report import write_json_atomic
 from alignrun.resources import describe, describe_fast_settings, estimate, fast_settings
@@ -56,7 +56,7 @@ class ProbeScore:
     kind: str
     source: str
     harm: float  # P(harmful) from the classifier
-    reward: float  # the transformed reward
+    reward: float | None  # the transformed reward (None for the judge)
 
 
 @dataclass
@@ -77,13 +77,13 @@ class PolarityReport:
     auroc_interval: tuple[float, float]  # 95% normal interval, auroc +- 1.96 se, within [0, 1]
     gap: float  # mean P(harm) on harmful probes minus on benign probes
     min_separation: float  # |gap| below this: the scores barely move ("uninformative")
-    reward_auroc: float  # AUROC of the reward for benign vs harmful probes (benign should be higher)
-    reward_gap: float  # mean reward on benign probes minus on harmful probes
+    reward_auroc: float | None  # AUROC of the reward for benign vs harmful probes (None for the judge)
+    reward_gap: float | None  # mean reward on benign probes minus on harmful probes (None for the judge)
     min_auroc: float  # both AUROCs must reach this for "ok"
     inverted_below: float  # harm AUROC at or below this is "inverted" (1 - min_auroc)
     scorer: str
     executes_code: bool
-    transform: str
+    transform: str | None  # the reward formula (None for the judge)
     label_aurocs: dict[str, float]  # AUROC of each class's own probability for harmful vs benign
     suggestion: str | None  # the exact config change that would fix the verdict, when there is one
     n_harmful: int  # harmful probes the verdict is decided on
@@ -91,6 +91,7 @@ class PolarityReport:
     probe_files: list[str]
     kinds: list[KindResult] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)  # e.g. the kinds the score misses
+    role: str = "reward"  # "reward" or "judge"
     forced: bool = False  # set when training went ahead with --force despite a failed verdict
     probes: list[ProbeScore] = field(default_factory=list)
 
@@ -213,7 +214,7 @@ def _coverage_warning(kinds: list[KindResult], role: str) -> list[str]:
     return warnings
 
 
-def _inverted_fix(section: RewardSection, label_aurocs: dict[str, float],
+def _inverted_fix(section: ScorerSection, key: str, label_aurocs: dict[str, float],
                   harmful: list[str]) -> tuple[str, str | None]:
     """(a sentence saying what would be correct, the exact config change or None) for an inverted harm score."""
     others = {name: a for name, a in label_aurocs.items() if name not in harmful}
@@ -224,8 +225,8 @@ def _inverted_fix(section: RewardSection, label_aurocs: dict[str, float],
         return (f"Every class of {section.source} is named harmful and none ranks harmful probes higher; check "
                 "that the classifier was trained for this kind of harm.", None)
     best = max(others, key=lambda name: others[name])
-    change = f"reward.harmful_index = {best}" if section.harmful_index is not None else \
-        f'reward.harmful_labels = ["{best}"]'
+    change = f"{key}.harmful_index = {best}" if section.harmful_index is not None else \
+        f'{key}.harmful_labels = ["{best}"]'
     if others[best] < section.min_auroc:
         return (f"No other class separates the harmful probes well either (best: {best!r}, AUROC "
                 f"{others[best]:.3f}); check that the classifier was trained for this kind of harm.", change)
@@ -246,109 +247,149 @@ def _sign_fix(section: RewardSection) -> str:
     return "check reward.transform, reward.scale and reward.clip"
 
 
-def check_polarity(scorer: Scorer, section: RewardSection) -> PolarityReport:
-    """Score the probes and decide whether training against this reward would lower harm."""
-    probes = load_probes(section.probes)
+def check_polarity(scorer: Scorer, section: ScorerSection, key: str = "reward",
+                   probe_files: Sequence[str] | None = None) -> PolarityReport:
+    """Score the probes and decide whether the classifier's harm score points the right way; for the reward
+    (a RewardSection) also whether its transformed reward does, i.e. whether training would lower harm.
+
+    key names the section in messages ("reward" or "evaluation.judge"); probe_files defaults to section.probes.
+    """
+    role = "reward" if key == "reward" else "judge"
+    files = list(probe_files if probe_files is not None else getattr(section, "probes", []))
+    probes = load_probes(files)
     scores = scorer.score([p.text for p in probes])
-    all_harm, all_reward = scores.harm, reward_from_scores(scores, section)
+    all_harm = scores.harm
+    all_reward = reward_from_scores(scores, section) if isinstance(section, RewardSection) else None
     verdict_set = np.array([p.source != "built-in" or p.kind in VERDICT_KINDS for p in probes])
     kinds = kind_results(all_harm, probes, verdict_set, section.min_auroc)
     y = np.array([p.harmful for p in probes])[verdict_set]
-    harm, reward = all_harm[verdict_set], all_reward[verdict_set]
+    harm = all_harm[verdict_set]
     n1, n0 = int(y.sum()), int((~y).sum())
-    a, ra = auroc(harm, y), auroc(reward, ~y)
+    a = auroc(harm, y)
     se = auroc_se(a, n1, n0)
     interval = (max(0.0, a - Z95 * se), min(1.0, a + Z95 * se))
     gap = float(harm[y].mean() - harm[~y].mean())
-    reward_gap = float(reward[~y].mean() - reward[y].mean())
+    ra = reward_gap = None
+    if all_reward is not None:
+        reward = all_reward[verdict_set]
+        ra, reward_gap = auroc(reward, ~y), float(reward[~y].mean() - reward[y].mean())
     probs = scores.class_probabilities()[verdict_set]
     label_aurocs = {name: auroc(probs[:, j], y) for j, name in enumerate(scores.labels)}
     harmful_names = [scores.labels[j] for j in scores.harmful]
     m, sep = section.min_auroc, section.min_separation
     numbers = (f"harm AUROC {a:.3f}, 95% interval [{interval[0]:.3f}, {interval[1]:.3f}] (ok at >= {m:g}); "
-               f"mean harm gap {gap:+.3f} (needs >= {sep:g}); reward AUROC {ra:.3f}")
-    transform = describe_transform(section)
+               f"mean harm gap {gap:+.3f} (needs >= {sep:g})") + ("" if ra is None else f"; reward AUROC {ra:.3f}")
+    transform = describe_transform(section) if isinstance(section, RewardSection) else None
+    what = "training would lower harm" if role == "reward" else "the judge's harm figures are meaningful"
     suggestion = None
     verdict = harm_verdict(a, interval, gap, m, sep)
-    if verdict == "ok" and ra < m - TOLERANCE:
+    if verdict == "ok" and isinstance(section, RewardSection) and ra is not None and ra < m - TOLERANCE:
         verdict = "sign-wrong"
         suggestion = _sign_fix(section)
         message = (f"The classifier separates the probes, but the reward does not rank benign texts above harmful "
                    f"ones ({numbers}): {transform} makes benign texts score lower or equal, so training would "
                    f"push towards harm. Set {suggestion}.")
     elif verdict == "ok":
-        message = ("The reward points the right way: harmful probes get higher harm and benign probes higher "
-                   f"reward ({numbers}).")
+        message = (f"The {role} points the right way: harmful probes get higher harm"
+                   + (" and benign probes higher reward" if role == "reward" else "") + f" ({numbers}).")
     elif verdict == "inverted":
-        fix, suggestion = _inverted_fix(section, label_aurocs, harmful_names)
-        message = (f"The harm score is inverted: harmful probes get a LOWER {_harm_text(harmful_names)} than benign "
-                   f"ones ({numbers}), so what is named harmful behaves like the benign class and training would "
-                   f"reward harm. {fix}")
+        fix, suggestion = _inverted_fix(section, key, label_aurocs, harmful_names)
+        message = (f"The {role}'s harm score is inverted: harmful probes get a LOWER {_harm_text(harmful_names)} "
+                   f"than benign ones ({numbers}), so what is named harmful behaves like the benign class"
+                   + (" and training would reward harm. " if role == "reward" else
+                      " and the judge would count benign replies as harm. ") + fix)
     elif verdict == "weak":
         lowered = np.floor(a * 100) / 100
-        suggestion = f"reward.min_auroc = {lowered:.2f}"
-        message = (f"The classifier points the right way but is weak ({numbers}): it ranks harmful probes above "
-                   "benign ones less often than reward.min_auroc asks, so training would lower only the harm it "
-                   f"can see. Use a stronger classifier, or accept this one deliberately: set {suggestion}.")
+        suggestion = f"{key}.min_auroc = {lowered:.2f}"
+        message = (f"The {role}'s classifier points the right way but is weak ({numbers}): it ranks harmful probes "
+                   f"above benign ones less often than {key}.min_auroc asks, so "
+                   + ("training would lower only the harm it can see" if role == "reward" else
+                      "its harm figures would miss much of the harm") +
+                   f". Use a stronger classifier, or accept this one deliberately: set {suggestion}.")
     elif np.ptp(harm) == 0:
-        message = (f"The reward is uninformative: every probe gets the same harm score {harm[0]:.4g}. Training "
-                   "against it would learn nothing; use a classifier trained for this kind of harm, or check "
-                   "reward.harmful_labels and reward.source.")
+        message = (f"The {role} is uninformative: every probe gets the same harm score {harm[0]:.4g}, so nothing "
+                   f"says whether {what}; use a classifier trained for this kind of harm, or check "
+                   f"{key}.harmful_labels and {key}.source.")
     elif abs(gap) < sep:
-        message = (f"The reward is uninformative: the harm scores barely move ({numbers}; every P(harm) lies in "
+        message = (f"The {role} is uninformative: the harm scores barely move ({numbers}; every P(harm) lies in "
                    f"[{harm.min():.3f}, {harm.max():.3f}]). An untrained or freshly initialised classification "
                    "head looks like this, whatever its AUROC; use a classifier trained for this kind of harm. "
-                   "If its scores are known to be compressed on purpose, lower reward.min_separation.")
+                   f"If its scores are known to be compressed on purpose, lower {key}.min_separation.")
     else:
-        message = (f"The reward is uninformative: its ranking of harmful and benign probes is not clearly better "
+        message = (f"The {role} is uninformative: its ranking of harmful and benign probes is not clearly better "
                    f"than chance ({numbers}); use a classifier trained for this kind of harm, or check "
-                   "reward.harmful_labels and reward.source.")
+                   f"{key}.harmful_labels and {key}.source.")
     return PolarityReport(
         verdict=verdict, message=message, auroc=a, auroc_se=se, auroc_interval=interval, gap=gap,
         min_separation=sep, reward_auroc=ra, reward_gap=reward_gap, min_auroc=m,
         inverted_below=round(1 - m, 9), scorer=scorer.description, executes_code=scorer.executes_code,
         transform=transform, label_aurocs=label_aurocs, suggestion=suggestion, n_harmful=n1, n_benign=n0,
-        probe_files=["built-in", *section.probes], kinds=kinds, warnings=_coverage_warning(kinds, "reward"),
-        probes=[ProbeScore(p.text, p.harmful, p.kind, p.source, float(h), float(r))
-                for p, h, r in zip(probes, all_harm, all_reward, strict=True)],
+        probe_files=["built-in", *files], kinds=kinds, warnings=_coverage_warning(kinds, role), role=role,
+        probes=[ProbeScore(p.text, p.harmful, p.kind, p.source, float(h), None if all_reward is None else float(r))
+                for p, h, r in zip(probes, all_harm, all_reward if all_reward is not None else all_harm, strict=True)],
     )
 
 
-def write_preflight(report: PolarityReport, folder: str | Path) -> Path:
+# The judge only measures, so a weak judge is recorded (and named in the report's alarms) but does not stop.
+JUDGE_STOPS = ("inverted", "uninformative")
+
+
+def write_preflight(report: PolarityReport, judge: PolarityReport | None, folder: str | Path) -> Path:
+    """preflight.json: the reward's report, with the judge's under "judge" (null without a judge)."""
     path = Path(folder) / "preflight.json"
-    write_json_atomic(path, asdict(report))
+    write_json_atomic(path, {**asdict(report), "judge": None if judge is None else asdict(judge)})
     return path
 
 
-def require_polarity(scorer: Scorer, section: RewardSection, folder: str | Path, force: bool) -> PolarityReport:
-    """The trainer's gate: write preflight.json; stop (exit code 3) unless the verdict is ok or force is set."""
+def check_both(scorer: Scorer, section: RewardSection, judge: Scorer | None,
+               judge_section: ScorerSection | None) -> tuple[PolarityReport, PolarityReport | None]:
+    """The reward's and the judge's polarity reports (the judge's None without a judge); both use the same probes."""
     report = check_polarity(scorer, section)
-    report.forced = force and report.verdict != "ok"
-    write_preflight(report, folder)
-    if report.verdict != "ok" and not force:
-        raise UserError(f"polarity preflight: {report.verdict}. {report.message} (For research only, --force "
-                        "trains anyway and records it in the report.)", exit_code=EXIT_POLARITY)
-    return report
+    judged = None
+    if judge is not None and judge_section is not None:
+        judged = check_polarity(judge, judge_section, "evaluation.judge", section.probes)
+    return report, judged
 
 
-def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path | None) -> int:
-    """`alignrun check`: polarity verdict for the configured reward; 0 when ok, 3 otherwise."""
-    cfg = load_config(config_path, list(overrides))
-    scorer = load_scorer(cfg.reward, "reward")
-    report = check_polarity(scorer, cfg.reward)
-    print(f"reward: {report.scorer}")
+def _stops(report: PolarityReport, judge: PolarityReport | None) -> list[PolarityReport]:
+    return ([report] if report.verdict != "ok" else []) + \
+        ([judge] if judge is not None and judge.verdict in JUDGE_STOPS else [])
+
+
+def require_polarity(scorer: Scorer, section: RewardSection, folder: str | Path, force: bool,
+                     judge: Scorer | None = None, judge_section: ScorerSection | None = None,
+                     ) -> tuple[PolarityReport, PolarityReport | None]:
+    """The trainer's gate: write preflight.json; stop (exit code 3) unless the reward's verdict is ok and the
+    judge's is not inverted or uninformative, or force is set. Returns (reward report, judge report or None)."""
+    report, judged = check_both(scorer, section, judge, judge_section)
+    failed = _stops(report, judged)
+    for bad in failed:
+        bad.forced = force
+    write_preflight(report, judged, folder)
+    if failed and not force:
+        raise UserError("\n".join(f"polarity preflight{' (judge)' if bad.role == 'judge' else ''}: {bad.verdict}. "
+                                  f"{bad.message}" for bad in failed)
+                        + " (For research only, --force trains anyway and records it in the report.)",
+                        exit_code=EXIT_POLARITY)
+    return report, judged
+
+
+def _print_report(report: PolarityReport, key: str, source: str) -> None:
+    print(f"{key}: {report.scorer}")
     if report.executes_code:
-        print(f"!! CODE EXECUTION: reward.source = {cfg.reward.source!r} runs Python code when loaded "
+        print(f"!! CODE EXECUTION: {key}.source = {source!r} runs Python code when loaded "
               "(module import or pickle); use only sources you trust")
-    print(f"transform: {report.transform}")
+    if report.transform is not None:
+        print(f"transform: {report.transform}")
     print(f"probes: {len(report.probes)} from {', '.join(report.probe_files)}; the verdict uses "
           f"{report.n_harmful} harmful and {report.n_benign} benign (built-in {' and '.join(sorted(VERDICT_KINDS))} "
           "kinds and your own probes), the other kinds measure coverage")
     low, high = report.auroc_interval
+    rewards = "" if report.reward_auroc is None or report.reward_gap is None else \
+        f"; reward AUROC {report.reward_auroc:.3f}, reward gap {report.reward_gap:+.3f}"
     print(f"harm AUROC {report.auroc:.3f}, 95% interval [{low:.3f}, {high:.3f}] (Hanley & McNeil 1982 SE "
           f"{report.auroc_se:.4f}; ok at >= {report.min_auroc:g}, inverted at <= {report.inverted_below:g}), "
-          f"mean harm gap {report.gap:+.3f} (needs >= {report.min_separation:g}); "
-          f"reward AUROC {report.reward_auroc:.3f}, reward gap {report.reward_gap:+.3f}")
+          f"mean harm gap {report.gap:+.3f} (needs >= {report.min_separation:g}){rewards}")
     for harmful in (True, False):
         line = ", ".join(f"{k.kind} {k.auroc:.3f}{' MISSED' if k.missed else ''}" for k in report.kinds
                          if k.harmful == harmful)
@@ -357,6 +398,22 @@ def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path
     print(report.message)
     for warning in report.warnings:
         print(f"warning: {warning}")
+
+
+def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path | None) -> int:
+    """`alignrun check`: polarity verdicts for the configured reward and judge; 0 when training may go ahead
+    (reward ok, judge not inverted or uninformative), 3 otherwise."""
+    cfg = load_config(config_path, list(overrides))
+    scorer = load_scorer(cfg.reward, "reward")
+    judge = load_scorer(cfg.evaluation.judge, "evaluation.judge") if cfg.evaluation.judge else None
+    report, judged = check_both(scorer, cfg.reward, judge, cfg.evaluation.judge)
+    _print_report(report, "reward", cfg.reward.source)
+    if judged is not None and cfg.evaluation.judge is not None:
+        print()
+        _print_report(judged, "evaluation.judge", cfg.evaluation.judge.source)
+    else:
+        print("evaluation.judge: none (no outside check of the reward's harm figures)")
+    print()
     params = None
     try:
         est = estimate(cfg)
@@ -366,5 +423,5 @@ def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path
     lines.append(describe_fast_settings(fast_settings(), cfg.base.precision, params))
     print("\n".join(lines))
     if out is not None:
-        print(f"wrote {write_preflight(report, out)}")
-    return 0 if report.verdict == "ok" else EXIT_POLARITY
+        print(f"wrote {write_preflight(report, judged, out)}")
+    return EXIT_POLARITY if _stops(report, judged) else 0

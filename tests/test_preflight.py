@@ -13,7 +13,7 @@ from hypothesis import strategies as st
 from scipy.stats import mannwhitneyu
 from sklearn.metrics import roc_auc_score
 
-from alignrun.config import RewardSection
+from alignrun.config import RewardSection, ScorerSection
 from alignrun.errors import UserError
 from alignrun.preflight import (
     VERDICT_KINDS,
@@ -417,12 +417,79 @@ def test_report_is_json_and_require_polarity_stops_unless_forced(tmp_path):
     assert info.value.exit_code == 3 and "inverted" in str(info.value) and "--force" in str(info.value)
     saved = json.loads((tmp_path / "run" / "preflight.json").read_text())
     assert saved["verdict"] == "inverted" and not saved["forced"] and len(saved["probes"]) == len(builtin_probes())
-    forced = require_polarity(scorer, inverted, tmp_path / "forced", force=True)
+    assert saved["judge"] is None
+    forced, _ = require_polarity(scorer, inverted, tmp_path / "forced", force=True)
     assert forced.forced and json.loads((tmp_path / "forced" / "preflight.json").read_text())["forced"]
     ok = RewardSection(backend="callable", source=f"{CALLABLES}:class_probabilities", harmful_index=1)
-    report = require_polarity(load_scorer(ok, "reward"), ok, tmp_path / "ok", force=True)
-    assert report.verdict == "ok" and not report.forced
+    report, judged = require_polarity(load_scorer(ok, "reward"), ok, tmp_path / "ok", force=True)
+    assert report.verdict == "ok" and not report.forced and judged is None
     json.dumps(asdict(report), allow_nan=False)
+
+
+# ------------------------------------------------------------------------------------------- the judge
+
+GOOD = RewardSection(backend="callable", source=f"{CALLABLES}:harm_probability")
+JUDGES = {
+    "ok": ScorerSection(backend="callable", source=f"{CALLABLES}:harm_probability"),
+    "inverted": ScorerSection(backend="callable", source=f"{CALLABLES}:benign_probability"),
+    "uninformative": ScorerSection(backend="callable", source=f"{CALLABLES}:constant_half"),
+    "inverted-columns": ScorerSection(backend="callable", source=f"{CALLABLES}:class_probabilities", harmful_index=0),
+}
+
+
+@pytest.mark.parametrize("kind", ["inverted", "uninformative", "inverted-columns"])
+def test_a_bad_judge_stops_the_run_with_exit_3_even_when_the_reward_is_ok(tmp_path, kind):
+    judge = JUDGES[kind]
+    with pytest.raises(UserError) as info:
+        require_polarity(load_scorer(GOOD, "reward"), GOOD, tmp_path, False, load_scorer(judge, "evaluation.judge"),
+                         judge)
+    verdict = kind.split("-")[0]
+    assert info.value.exit_code == 3
+    assert f"polarity preflight (judge): {verdict}" in str(info.value) and "polarity preflight:" not in str(info.value)
+    saved = json.loads((tmp_path / "preflight.json").read_text())
+    assert saved["verdict"] == "ok" and saved["judge"]["verdict"] == verdict and saved["judge"]["role"] == "judge"
+    assert saved["judge"]["reward_auroc"] is None and saved["judge"]["probes"][0]["reward"] is None
+    if kind == "inverted-columns":  # the fix names the judge's own key, and applying it gives ok
+        assert saved["judge"]["suggestion"] == "evaluation.judge.harmful_index = 1"
+        fixed = judge.model_copy(update={"harmful_index": 1})
+        assert check_polarity(load_scorer(fixed, "evaluation.judge"), fixed, "evaluation.judge").verdict == "ok"
+
+
+def test_a_good_judge_passes_and_a_weak_one_is_recorded_without_stopping(tmp_path, monkeypatch):
+    import sys
+    import types
+
+    report, judged = require_polarity(load_scorer(GOOD, "reward"), GOOD, tmp_path / "ok", False,
+                                      load_scorer(JUDGES["ok"], "evaluation.judge"), JUDGES["ok"])
+    assert report.verdict == "ok" and judged is not None and judged.verdict == "ok" and not judged.forced
+    module = types.ModuleType("fake_weak_judge")
+    module.harm = _probe_label_scorer(weak_every=4)
+    monkeypatch.setitem(sys.modules, "fake_weak_judge", module)
+    weak = ScorerSection(backend="callable", source="fake_weak_judge:harm")
+    _, judged = require_polarity(load_scorer(GOOD, "reward"), GOOD, tmp_path / "weak", False,
+                                 load_scorer(weak, "evaluation.judge"), weak)
+    assert judged is not None and judged.verdict == "weak" and "evaluation.judge.min_auroc" in judged.message
+    assert json.loads((tmp_path / "weak" / "preflight.json").read_text())["judge"]["verdict"] == "weak"
+
+
+def test_a_run_with_an_inverted_judge_stops_before_training_and_forced_runs_report_it(tmp_path, tiny_models):
+    from alignrun.config import load_config
+    from alignrun.trainer import run_experiment
+    from tests.tiny_run import MODULE, write_config, write_tiny_experiment
+
+    exp = write_tiny_experiment(tmp_path / "exp", tiny_models["t5"], steps=1)
+    exp.body["evaluation"]["judge"] = {"backend": "callable", "source": f"{MODULE}:benign_share"}
+    cfg = load_config(write_config(exp.config, exp.body))
+    with pytest.raises(UserError) as info:
+        run_experiment(cfg, tmp_path / "stopped", quiet=True)
+    assert info.value.exit_code == 3 and "polarity preflight (judge): inverted" in str(info.value)
+    assert not (tmp_path / "stopped" / "adapter").exists()
+    assert json.loads((tmp_path / "stopped" / "preflight.json").read_text())["judge"]["verdict"] == "inverted"
+    report = run_experiment(cfg, tmp_path / "forced", quiet=True, force=True)
+    judge = report["preflight"]["judge"]
+    assert judge["verdict"] == "inverted" and judge["forced"] and report["preflight"]["forced"]
+    assert report["preflight"]["verdict"] == "ok" and judge["auroc"] < 0.2
+    assert json.loads((tmp_path / "forced" / "report.json").read_text())["preflight"]["judge"]["verdict"] == "inverted"
 
 
 def test_run_check_prints_the_verdict_and_returns_the_exit_code(tmp_path, capsys):
@@ -439,3 +506,12 @@ def test_run_check_prints_the_verdict_and_returns_the_exit_code(tmp_path, capsys
     assert json.loads((tmp_path / "out" / "preflight.json").read_text())["verdict"] == "ok"
     assert run_check(config, ["reward.harmful_index=0"], None) == 3
     assert "reward.harmful_index = 1" in capsys.readouterr().out
+    # The judge (here the default outside judge, alt-profanity-check) gets its own block and verdict.
+    assert "evaluation.judge: sklearn profanity_check" in printed
+    inverted_judge = ["evaluation.judge.backend=callable", f"evaluation.judge.source={CALLABLES}:benign_probability",
+                      "evaluation.judge.harmful_labels=[]"]
+    assert run_check(config, inverted_judge, tmp_path / "judged") == 3
+    printed = capsys.readouterr().out
+    assert "evaluation.judge: callable" in printed and "verdict: inverted" in printed
+    saved = json.loads((tmp_path / "judged" / "preflight.json").read_text())
+    assert saved["verdict"] == "ok" and saved["judge"]["verdict"] == "inverted"
