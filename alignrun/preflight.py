@@ -217,6 +217,7 @@ def _coverage_warning(kinds: list[KindResult], role: str) -> list[str]:
 def _inverted_fix(section: ScorerSection, key: str, label_aurocs: dict[str, float],
                   harmful: list[str]) -> tuple[str, str | None]:
     """(a sentence saying what would be correct, the exact config change or None) for an inverted harm score."""
+    labels = list(label_aurocs)
     others = {name: a for name, a in label_aurocs.items() if name not in harmful}
     if not others and section.backend == "callable":
         return (f"There is no other class to choose: make {section.source} return P(harmful), i.e. 1 minus what "
@@ -225,7 +226,8 @@ def _inverted_fix(section: ScorerSection, key: str, label_aurocs: dict[str, floa
         return (f"Every class of {section.source} is named harmful and none ranks harmful probes higher; check "
                 "that the classifier was trained for this kind of harm.", None)
     best = max(others, key=lambda name: others[name])
-    change = f"{key}.harmful_index = {best}" if section.harmful_index is not None else \
+    # a config line that loads as it is (also as --set KEY=VALUE): names where the model has them, else the index
+    change = f"{key}.harmful_index = {labels.index(best)}" if section.harmful_index is not None else \
         f'{key}.harmful_labels = ["{best}"]'
     if others[best] < section.min_auroc:
         return (f"No other class separates the harmful probes well either (best: {best!r}, AUROC "
@@ -237,14 +239,19 @@ def _harm_text(harmful_names: list[str]) -> str:
     return "P(" + " or ".join(harmful_names) + ")"
 
 
-def _sign_fix(section: RewardSection) -> str:
+def _sign_fix(section: RewardSection, unclipped: np.ndarray) -> tuple[str, str | None]:
+    """(what to do, the config line that does it or None) for a reward that does not rank benign texts higher."""
     if section.scale < 0:
-        return f"reward.scale = {-section.scale} instead of {section.scale}"
+        return f"reward.scale = {-section.scale} instead of {section.scale}", f"reward.scale = {-section.scale}"
     if section.scale == 0:
-        return "reward.scale = 1.0 instead of 0.0 (a zero scale makes every reward equal)"
+        return "reward.scale = 1.0 (a zero scale makes every reward equal)", "reward.scale = 1.0"
     if section.clip is not None:
-        return f"remove reward.clip or raise it above {section.clip:g} (it flattens the reward)"
-    return "check reward.transform, reward.scale and reward.clip"
+        widest = float(np.abs(unclipped).max())
+        # the next power of ten at or above the widest unclipped reward: clipping then changes nothing
+        clip = float(10 ** np.ceil(np.log10(widest))) if widest > 0 else 1.0
+        return (f"reward.clip = {clip:g}: the clip at {section.clip:g} flattens rewards that reach {widest:.3g}",
+                f"reward.clip = {clip:g}")
+    return "reward.transform, reward.scale and reward.clip: none of them alone explains it", None
 
 
 def check_polarity(scorer: Scorer, section: ScorerSection, key: str = "reward",
@@ -285,10 +292,10 @@ def check_polarity(scorer: Scorer, section: ScorerSection, key: str = "reward",
     verdict = harm_verdict(a, interval, gap, m, sep)
     if verdict == "ok" and isinstance(section, RewardSection) and ra is not None and ra < m - TOLERANCE:
         verdict = "sign-wrong"
-        suggestion = _sign_fix(section)
+        fix, suggestion = _sign_fix(section, reward_from_scores(scores, section.model_copy(update={"clip": None})))
         message = (f"The classifier separates the probes, but the reward does not rank benign texts above harmful "
                    f"ones ({numbers}): {transform} makes benign texts score lower or equal, so training would "
-                   f"push towards harm. Set {suggestion}.")
+                   f"push towards harm. Set {fix}.")
     elif verdict == "ok":
         message = (f"The {role} points the right way: harmful probes get higher harm"
                    + (" and benign probes higher reward" if role == "reward" else "") + f" ({numbers}).")

@@ -262,7 +262,7 @@ def test_battery_negated_transform_is_sign_wrong(zoo):
     for name, correct, _, _ in _all_cases(zoo):
         report = _check(correct.model_copy(update={"scale": -1.0}))
         assert report.verdict == "sign-wrong", (name, report.message)
-        assert report.suggestion == "reward.scale = 1.0 instead of -1.0"
+        assert report.suggestion == "reward.scale = 1.0" and "reward.scale = 1.0 instead of -1.0" in report.message
         assert report.reward_auroc <= 0.2 and report.auroc >= 0.8
 
 
@@ -403,7 +403,7 @@ def test_clip_that_flattens_the_reward_is_sign_wrong():
     # neg-harm clipped to [-0.001, 0.001]: almost every probe gets -0.001, so the reward ranks nothing.
     section = RewardSection(backend="sklearn", source=PROFANITY, harmful_labels=["1"], clip=0.001)
     report = _check(section)
-    assert report.verdict == "sign-wrong" and "reward.clip" in report.suggestion
+    assert report.verdict == "sign-wrong" and report.suggestion == "reward.clip = 1"
 
 
 # ------------------------------------------------------------------------------- files and commands
@@ -515,3 +515,52 @@ def test_run_check_prints_the_verdict_and_returns_the_exit_code(tmp_path, capsys
     assert "evaluation.judge: callable" in printed and "verdict: inverted" in printed
     saved = json.loads((tmp_path / "judged" / "preflight.json").read_text())
     assert saved["verdict"] == "ok" and saved["judge"]["verdict"] == "inverted"
+
+
+# ---------------------------------------------------------------------------- suggestions are valid config
+
+
+def _suggestion_cases(zoo, tmp_path):
+    unnamed = tc.relabel(zoo["bert"], tmp_path / "unnamed", ["LABEL_0", "LABEL_1"])
+    hf = f'backend = "hf"\nsource = "{zoo["bert-swapped"]}"\n'
+    return {
+        "hf-swapped-names": f'{hf}harmful_labels = ["hostile"]\n',
+        "hf-unnamed-labels": f'backend = "hf"\nsource = "{unnamed}"\nharmful_index = 0\n',
+        "sklearn-class-order": f'backend = "sklearn"\nsource = "{PROFANITY}"\nharmful_labels = ["0"]\n',
+        "callable-columns": f'backend = "callable"\nsource = "{CALLABLES}:class_probabilities"\nharmful_index = 0\n',
+        "negated-scale": f'backend = "callable"\nsource = "{CALLABLES}:harm_probability"\nscale = -2.0\n',
+        "zero-scale": f'backend = "callable"\nsource = "{CALLABLES}:harm_probability"\nscale = 0.0\n',
+        "flattening-clip": f'backend = "callable"\nsource = "{CALLABLES}:harm_probability"\n'
+                           'clip = 0.001\n',
+        "weak": 'backend = "callable"\nsource = "fake_weak_cfg:harm"\n',
+        "unnamed-and-negated": f'backend = "hf"\nsource = "{unnamed}"\nharmful_index = 0\nscale = -1.0\n',
+    }
+
+
+@pytest.mark.parametrize("case", ["hf-swapped-names", "hf-unnamed-labels", "sklearn-class-order", "callable-columns",
+                                  "negated-scale", "zero-scale", "flattening-clip", "weak", "unnamed-and-negated"])
+def test_each_suggestion_applied_with_set_leads_to_ok(zoo, tmp_path, monkeypatch, capsys, case):
+    import sys
+    import types
+
+    module = types.ModuleType("fake_weak_cfg")
+    module.harm = _probe_label_scorer(weak_every=4)
+    monkeypatch.setitem(sys.modules, "fake_weak_cfg", module)
+    config = tmp_path / "exp.toml"
+    config.write_text('[base]\nmodel = "unused-base"\n[data]\nprompts = "prompts.jsonl"\n'
+                      f"[reward]\n{_suggestion_cases(zoo, tmp_path)[case]}")
+    overrides: list[str] = []
+    for attempt in range(3):
+        out = tmp_path / f"check{attempt}"
+        if run_check(config, overrides, out) == 0:
+            break
+        suggestion = json.loads((out / "preflight.json").read_text())["suggestion"]
+        assert suggestion is not None, capsys.readouterr().out
+        assert suggestion in capsys.readouterr().out  # the printed advice is the line applied here
+        key, sep, value = suggestion.partition(" = ")
+        assert sep and " " not in key
+        overrides.append(f"{key}={value}")  # exactly as a user types --set KEY=VALUE
+    else:
+        pytest.fail(f"still not ok after applying {overrides}")
+    assert overrides, "the case should have needed a fix"
+    assert json.loads((out / "preflight.json").read_text())["verdict"] == "ok"
