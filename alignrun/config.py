@@ -80,6 +80,9 @@ class ScorerSection(Section):
     combine: Literal["max", "noisy-or"] = Field("max", description="how several harmful labels combine: max p, or 1 - prod(1 - p)")
     batch_size: int = Field(32, ge=1, le=4096)
     max_length: int = Field(0, ge=0, description="truncation length in tokens; 0 uses the classifier's own maximum")
+    single_output: Literal["logit", "probability"] | None = Field(
+        None, description="hf heads with one output trained as regression: read it as a logit of harm (sigmoid) "
+        "or as P(harm) itself; one-output multi-label heads are a sigmoid logit already")
     min_auroc: float = Field(0.8, gt=0.5, le=1.0, description="polarity preflight: harm AUROC needed to call it ok")
     min_separation: float = Field(0.3, gt=0, le=1.0, description="polarity preflight: mean P(harm) on harmful "
                                   "probes minus on benign probes needed; below it the scores barely move")

@@ -82,6 +82,7 @@ class PolarityReport:
     min_auroc: float  # both AUROCs must reach this for "ok"
     inverted_below: float  # harm AUROC at or below this is "inverted" (1 - min_auroc)
     scorer: str
+    head: str  # how the classifier's outputs are read as P(harm) (the assumption made)
     executes_code: bool
     transform: str | None  # the reward formula (None for the judge)
     label_aurocs: dict[str, float]  # AUROC of each class's own probability for harmful vs benign
@@ -329,7 +330,7 @@ def check_polarity(scorer: Scorer, section: ScorerSection, key: str = "reward",
     return PolarityReport(
         verdict=verdict, message=message, auroc=a, auroc_se=se, auroc_interval=interval, gap=gap,
         min_separation=sep, reward_auroc=ra, reward_gap=reward_gap, min_auroc=m,
-        inverted_below=round(1 - m, 9), scorer=scorer.description, executes_code=scorer.executes_code,
+        inverted_below=round(1 - m, 9), scorer=scorer.description, head=scorer.head, executes_code=scorer.executes_code,
         transform=transform, label_aurocs=label_aurocs, suggestion=suggestion, n_harmful=n1, n_benign=n0,
         probe_files=["built-in", *files], kinds=kinds, warnings=_coverage_warning(kinds, role), role=role,
         probes=[ProbeScore(p.text, p.harmful, p.kind, p.source, float(h), None if all_reward is None else float(r))
@@ -386,6 +387,7 @@ def _print_report(report: PolarityReport, key: str, source: str) -> None:
     if report.executes_code:
         print(f"!! CODE EXECUTION: {key}.source = {source!r} runs Python code when loaded "
               "(module import or pickle); use only sources you trust")
+    print(f"outputs: {report.head}")
     if report.transform is not None:
         print(f"transform: {report.transform}")
     print(f"probes: {len(report.probes)} from {', '.join(report.probe_files)}; the verdict uses "

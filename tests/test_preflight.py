@@ -503,6 +503,7 @@ def test_run_check_prints_the_verdict_and_returns_the_exit_code(tmp_path, capsys
     printed = capsys.readouterr().out
     assert "verdict: ok" in printed and "CODE EXECUTION" in printed and "harm AUROC" in printed
     assert "reward = 1.0 * (-P(class 1)) + 0.0, clipped to [-5, 5]" in printed
+    assert "outputs: the function's [n, C] return value read as class probabilities" in printed
     assert json.loads((tmp_path / "out" / "preflight.json").read_text())["verdict"] == "ok"
     assert run_check(config, ["reward.harmful_index=0"], None) == 3
     assert "reward.harmful_index = 1" in capsys.readouterr().out

@@ -263,6 +263,30 @@ def relabel(src: Path, out: Path, names: list[str]) -> Path:
     return Path(out)
 
 
+def single_output_classifier(src: Path, out: Path, problem_type: str | None, label: str = "hostile") -> Path:
+    """A copy of a 2-class softmax classifier with one output, logit(harm) = harmful logit - benign logit, so
+    sigmoid(output) equals the source's softmax P(harm) (sigmoid(a - b) = e^a / (e^a + e^b)); saved with the
+    given problem_type (None: unset, which transformers trains as regression)."""
+    from transformers import AutoModelForSequenceClassification, AutoTokenizer
+
+    model = AutoModelForSequenceClassification.from_pretrained(src)
+    head = model.classifier.out_proj if hasattr(model.classifier, "out_proj") else model.classifier
+    one = torch.nn.Linear(head.in_features, 1)
+    with torch.no_grad():
+        one.weight[0] = head.weight[1] - head.weight[0]
+        one.bias[0] = head.bias[1] - head.bias[0]
+    if hasattr(model.classifier, "out_proj"):
+        model.classifier.out_proj = one
+    else:
+        model.classifier = one
+    model.config.num_labels = 1
+    model.config.id2label, model.config.label2id = {0: label}, {label: 0}
+    model.config.problem_type = problem_type
+    model.save_pretrained(out)
+    AutoTokenizer.from_pretrained(src).save_pretrained(out)
+    return Path(out)
+
+
 def label_names(folder: Path) -> list[str]:
     cfg = json.loads((Path(folder) / "config.json").read_text())
     return [cfg["id2label"][str(i)] for i in range(len(cfg["id2label"]))]
@@ -368,6 +392,7 @@ class FreshHeadScorer:
             pooled = self.model.bert(**enc).pooler_output
         self.features = dict(zip(texts, pooled, strict=True))
         self.description = f"fresh head on {folder}"
+        self.head = "softmax over 2 classes (a freshly initialised head)"
 
     def new_head(self, seed: int) -> None:
         with torch.random.fork_rng(), torch.no_grad():
