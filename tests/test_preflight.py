@@ -360,6 +360,20 @@ def test_fresh_heads_on_a_trained_encoder_are_never_ok():
     assert suggestions == [None] * 200  # no advice to name the other class, which barely moves either
 
 
+@pytest.mark.slow
+def test_fresh_heads_on_the_demo_classifier_encoder_are_never_ok(demo_models):
+    # The demo classifier's encoder is trained for exactly this harm, so its pooled outputs already lean
+    # along a harm direction and a fresh head can rank the probes well (AUROC up to about 0.92 measured here)
+    # while its scores stay near 0.5: only the separation rule keeps such heads from "ok".
+    scorer = tc.FreshHeadScorer(demo_models.classifier, [p.text for p in builtin_probes()])
+    section = RewardSection(backend="callable", source="unused:unused", harmful_index=1)
+    verdicts = []
+    for seed in range(200):
+        scorer.new_head(seed)
+        verdicts.append(_check_with(scorer, section).verdict)
+    assert "ok" not in verdicts and "inverted" not in verdicts
+
+
 def _check_with(scorer, section):
     return check_polarity(scorer, section)
 
