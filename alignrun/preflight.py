@@ -2,15 +2,20 @@
 
 The reward classifier scores the built-in probes (alignrun/resources/probes.jsonl: invented lines of several
 kinds of harm and of benign lines that are blunt, complaining or use strong words harmlessly) plus any files in
-`reward.probes`. Per kind, the AUROC against the other class shows what the reward misses. Its harm score must rank harmful probes above benign ones (AUROC >= reward.min_auroc, with
-a 95% interval that excludes chance) AND move: mean P(harm) on harmful probes at least reward.min_separation
-above benign ones. The transformed reward must rank benign probes above harmful ones. Verdicts:
+`reward.probes`. The verdict is decided on the built-in insults and everyday lines plus every user probe; per
+kind, the AUROC against the verdict probes of the other class shows what the reward misses (a warning).
+Its harm score must rank harmful probes above benign ones (AUROC >= reward.min_auroc, with a 95% interval
+above 0.5) AND move: mean P(harm) on harmful probes at least reward.min_separation above benign ones. The
+transformed reward must rank benign probes above harmful ones. Verdicts:
 
     ok             all of that holds
     weak           harm points the right way (interval above 0.5, enough separation) but AUROC < min_auroc
     inverted       harm ranks benign probes higher: the wrong label is named harmful
     uninformative  harm scores barely move (separation < min_separation), or rank no better than chance
-    sign-wrong     harm separates, but the transform/scale/clip makes benign texts score lower
+    sign-wrong     harm separates, but the transform/scale/clip makes benign texts score lower (reward only)
+
+The outside judge gets the same check on the same probes. Training stops (exit code 3) unless the reward is
+ok and the judge is neither inverted nor uninformative; --force records that it went ahead anyway.
 """
 
 from __future__ import annotations
@@ -207,11 +212,13 @@ def _coverage_warning(kinds: list[KindResult], role: str) -> list[str]:
     if missed:
         warnings.append(f"the {role} misses these kinds of harm (AUROC against the benign verdict probes below min_auroc): "
                         + ", ".join(f"{k.kind} {k.auroc:.3f} ({k.n} probes)" for k in missed)
-                        + f"; the {role} does not see them, so training will not steer away from them")
+                        + ("; the reward does not see them, so training will not steer away from them" if role == "reward"
+                           else "; the judge does not see them, so its harm figures will not count them"))
     if confused:
         warnings.append(f"the {role} mistakes these benign kinds for harm (AUROC of the harmful verdict probes "
                         "against them below min_auroc): " + ", ".join(f"{k.kind} {k.auroc:.3f} ({k.n} probes)" for k in confused)
-                        + "; training may also push away from such harmless replies")
+                        + ("; training may also push away from such harmless replies" if role == "reward"
+                           else "; its harm figures will count such harmless replies as harm"))
     return warnings
 
 

@@ -487,6 +487,11 @@ def test_a_good_judge_passes_and_a_weak_one_is_recorded_without_stopping(tmp_pat
                                  load_scorer(weak, "evaluation.judge"), weak)
     assert judged is not None and judged.verdict == "weak" and "evaluation.judge.min_auroc" in judged.message
     assert json.loads((tmp_path / "weak" / "preflight.json").read_text())["judge"]["verdict"] == "weak"
+    assert "training" not in judged.message
+    _, blind = require_polarity(load_scorer(GOOD, "reward"), GOOD, tmp_path / "blind", False,
+                                load_scorer(GOOD, "evaluation.judge"), JUDGES["ok"])
+    assert blind is not None and "so its harm figures will not count them" in blind.warnings[0]
+    assert "training" not in " ".join(blind.warnings)
 
 
 def test_a_run_with_an_inverted_judge_stops_before_training_and_forced_runs_report_it(tmp_path, tiny_models):
