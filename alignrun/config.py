@@ -80,6 +80,12 @@ class ScorerSection(Section):
     combine: Literal["max", "noisy-or"] = Field("max", description="how several harmful labels combine: max p, or 1 - prod(1 - p)")
     batch_size: int = Field(32, ge=1, le=4096)
     max_length: int = Field(0, ge=0, description="truncation length in tokens; 0 uses the classifier's own maximum")
+    single_output: Literal["logit", "probability"] | None = Field(
+        None, description="hf heads with one output trained as regression: read it as a logit of harm (sigmoid) "
+        "or as P(harm) itself; one-output multi-label heads are a sigmoid logit already")
+    min_auroc: float = Field(0.8, gt=0.5, le=1.0, description="polarity preflight: harm AUROC needed to call it ok")
+    min_separation: float = Field(0.3, gt=0, le=1.0, description="polarity preflight: mean P(harm) on harmful "
+                                  "probes minus on benign probes needed; below it the scores barely move")
 
     @model_validator(mode="after")
     def _one_way_to_name_harm(self) -> ScorerSection:
@@ -97,8 +103,8 @@ class RewardSection(ScorerSection):
     scale: float = 1.0
     shift: float = 0.0
     clip: float | None = Field(None, gt=0, description="clip the reward to [-clip, clip] after scale and shift")
-    probes: list[str] = Field(default_factory=list, description="extra probe files (JSONL with text and harmful)")
-    min_auroc: float = Field(0.8, gt=0.5, le=1.0, description="polarity preflight: AUROC needed to call the reward ok")
+    probes: list[str] = Field(default_factory=list, description="extra probe files: JSONL rows with text, label "
+                             "(harmful or benign) and kind")
 
 
 class KLSection(Section):

@@ -82,7 +82,7 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
     judge_check = getattr(judge_polarity, "verdict", None)
     judge_is_reward = cfg.evaluation.judge is not None and (
         (cfg.evaluation.judge.backend, cfg.evaluation.judge.source) == (cfg.reward.backend, cfg.reward.source))
-    forced = getattr(polarity, "verdict", "ok") != "ok"
+    forced = getattr(polarity, "verdict", "ok") != "ok" or bool(getattr(judge_polarity, "forced", False))
     code_exec = [s.description for s in (scorer, judge) if s is not None and s.executes_code]
     if cfg.base.trust_remote_code:
         code_exec.append(f"base model code from {cfg.base.model} (trust_remote_code = true)")
@@ -98,7 +98,12 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
                   "total_params": policy.total_params,
                   "trainable_share": policy.trainable_params / max(policy.total_params, 1)},
         "preflight": {"verdict": getattr(polarity, "verdict", None), "auroc": getattr(polarity, "auroc", None),
-                      "reward_auroc": getattr(polarity, "reward_auroc", None), "forced": forced},
+                      "reward_auroc": getattr(polarity, "reward_auroc", None), "forced": forced,
+                      "warnings": list(getattr(polarity, "warnings", [])),
+                      "judge": None if judge_polarity is None else {
+                          "verdict": judge_polarity.verdict, "auroc": judge_polarity.auroc,
+                          "auroc_interval": list(judge_polarity.auroc_interval), "gap": judge_polarity.gap,
+                          "forced": judge_polarity.forced, "warnings": list(judge_polarity.warnings)}},
         "training": {"final_kl": last.get("kl_mean"), "final_beta": last.get("beta"),
                      "reward_first": history[0]["reward_mean"] if history else None,
                      "reward_last": last.get("reward_mean"), "kl_target": cfg.kl.target,

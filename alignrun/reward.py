@@ -66,6 +66,7 @@ def _probabilities(raw: np.ndarray, kind: RawKind) -> np.ndarray:
 class Scorer(Protocol):
     description: str
     executes_code: bool
+    head: str  # how the classifier's outputs are read as P(harm), in words
 
     def score(self, texts: Sequence[str]) -> Scores: ...
 
@@ -167,10 +168,9 @@ class HFScorer:
         id2label = config.id2label or {}
         self.labels = [str(id2label.get(i, f"LABEL_{i}")) for i in range(config.num_labels)]
         named = any(name != f"LABEL_{i}" for i, name in enumerate(self.labels))  # LABEL_i: no real names
-        # a single-output head is read as one sigmoid (binary) label
-        self.multi_label = config.problem_type == "multi_label_classification" or config.num_labels == 1
+        self.kind, self.head = _head_reading(config, section, key, where)
         self.harmful = resolve_harmful(section, key, self.labels, named, source)
-        if not self.multi_label:
+        if self.kind == "softmax-logits":
             _refuse_all_harmful(key, source, self.harmful, self.labels)
 
         try:
@@ -200,11 +200,11 @@ class HFScorer:
 
         self.tokenizer, self.model = tokenizer, model.eval()
         self.inputs = set(inspect.signature(model.forward).parameters)  # e.g. DistilBERT takes no token_type_ids
-        self.batch_size, self.combine = section.batch_size, section.combine
+        self.batch_size, self.combine, self.key, self.source = section.batch_size, section.combine, key, source
         self.max_length = section.max_length or own_limit
         rev = f"@{revision}" if revision else ""
-        head = "multi-label" if self.multi_label else "softmax"
-        self.description = (f"hf classifier {source}{rev} ({head}, harmful: "
+        short = {"softmax-logits": "softmax", "sigmoid-logits": "sigmoid", "probabilities": "probability output"}
+        self.description = (f"hf classifier {source}{rev} ({short[self.kind]}, harmful: "
                             f"{', '.join(self.labels[i] for i in self.harmful)})")
 
     def score(self, texts: Sequence[str]) -> Scores:
@@ -222,9 +222,37 @@ class HFScorer:
         raw = np.zeros((len(texts), len(self.labels)))
         if chunks:
             raw[order] = np.concatenate(chunks)
-        kind: RawKind = "sigmoid-logits" if self.multi_label else "softmax-logits"
-        harm = combine(_probabilities(raw, kind)[:, self.harmful], self.combine)
-        return Scores(harm=harm, raw=raw, labels=self.labels, harmful=self.harmful, raw_kind=kind)
+        if self.kind == "probabilities" and raw.size and (raw.min() < 0 or raw.max() > 1):
+            raise UserError(f"{self.key}.source = {self.source!r}: its single output reaches [{raw.min():.4g}, "
+                            f"{raw.max():.4g}], so it is not P(harm); set {self.key}.single_output = \"logit\" if "
+                            "it is a logit of harm, or use a classifier that gives probabilities")
+        harm = combine(_probabilities(raw, self.kind)[:, self.harmful], self.combine)
+        return Scores(harm=harm, raw=raw, labels=self.labels, harmful=self.harmful, raw_kind=self.kind)
+
+
+def _head_reading(config: Any, section: ScorerSection, key: str, where: str) -> tuple[RawKind, str]:
+    """How the head's outputs become probabilities, and that assumption in words (printed by the check)."""
+    n, problem = config.num_labels, config.problem_type
+    said = f"problem_type = {problem!r}" if problem else "no problem_type"
+    if section.single_output is not None and n != 1:
+        raise UserError(f"{key}.single_output = {section.single_output!r}: only for heads with one output; "
+                        f"{section.source} has {n}; remove {key}.single_output")
+    if problem == "multi_label_classification":
+        what = "one output read as a sigmoid logit" if n == 1 else f"{n} outputs, an independent sigmoid per label"
+        return "sigmoid-logits", f"multi-label head ({said}): {what}"
+    if n == 1:
+        if section.single_output is None:
+            # transformers trains a one-output head without a problem_type as regression (mean squared error)
+            raise UserError(
+                f"{where}: has a single output with {said}, which transformers trains as regression: the output is "
+                f"a score, not P(harmful), and alignrun will not guess how to read it. If it is a logit of harm set "
+                f'{key}.single_output = "logit" (P(harm) = sigmoid(output)); if it already is P(harm) in [0, 1] '
+                f'set {key}.single_output = "probability"')
+        if section.single_output == "logit":
+            return "sigmoid-logits", f"single-output head ({said}) read as a logit of harm: P(harm) = sigmoid(output), " \
+                f"as set by {key}.single_output"
+        return "probabilities", f"single-output head ({said}) read as P(harm) itself, as set by {key}.single_output"
+    return "softmax-logits", f"softmax over {n} classes ({said})"
 
 
 def _first_line(exc: BaseException) -> str:
@@ -329,6 +357,7 @@ class SklearnScorer:
                 "expected an estimator that takes raw texts (a Pipeline) or module:vectorizer,model"
             ) from None
         self.description = f"sklearn {source} (harmful: {', '.join(self.labels[i] for i in self.harmful)})"
+        self.head = f"predict_proba class probabilities for classes_ {self.labels}"
 
     def score(self, texts: Sequence[str]) -> Scores:
         chunks = [np.asarray(self.estimator.predict_proba(list(texts[i:i + self.batch_size])), dtype=float)
@@ -361,6 +390,8 @@ class CallableScorer:
                             f"probabilities set {key}.harmful_index, if it returns [n] harm probabilities set neither")
         which = f"column {section.harmful_index}" if section.harmful_index is not None else "P(harm)"
         self.description = f"callable {section.source} (harmful: {which})"
+        self.head = ("the function's [n, C] return value read as class probabilities" if section.harmful_index
+                     is not None else "the function's [n] return value read as P(harm)")
 
     def score(self, texts: Sequence[str]) -> Scores:
         n, index = len(texts), self.section.harmful_index

@@ -304,8 +304,8 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
             for warning in split.source.get("warnings", []):
                 print(f"warning: {warning}", flush=True)
         scorer = load_scorer(cfg.reward, "reward")
-        polarity = require_polarity(scorer, cfg.reward, out, force)
         judge = load_scorer(cfg.evaluation.judge, "evaluation.judge") if cfg.evaluation.judge else None
+        polarity, judge_polarity = require_polarity(scorer, cfg.reward, out, force, judge, cfg.evaluation.judge)
         if cfg.ppo.prompts_per_step % accelerator.num_processes:
             raise UserError(f"ppo.prompts_per_step ({cfg.ppo.prompts_per_step}) must divide evenly across "
                             f"{accelerator.num_processes} processes")
@@ -376,7 +376,8 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
         if main:
             report = build_report(cfg=cfg, before=before, after=after, history=history, policy=policy,
                                   polarity=polarity, scorer=scorer, judge=judge, split=split,
-                                  wall_s=time.time() - started, peak_rss_mb=peak_rss_mb(), started=started)
+                                  wall_s=time.time() - started, peak_rss_mb=peak_rss_mb(), started=started,
+                                  judge_polarity=judge_polarity)
             try:
                 write_report(out, report, before, after)
                 html_report.write_run_html(out)

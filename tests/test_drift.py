@@ -21,7 +21,8 @@ from alignrun import compare, metrics
 from alignrun.config import BaseSection, Experiment, LoraSection, ReferenceSection, with_overrides
 from alignrun.evaluation import EvalResult, drift, evaluate_policy, read_samples, summarise, write_samples
 from alignrun.models import build_policy
-from alignrun.report import RunFolder, build_report, render_markdown, write_json_atomic
+from alignrun.report import build_report, render_markdown
+from alignrun.runfolder import RunFolder, write_json_atomic
 
 CFG = Experiment.model_validate({
     "base": {"model": "tiny-base"}, "reward": {"source": "tiny-classifier", "harmful_labels": ["rude"]},

@@ -363,3 +363,51 @@ def test_missing_or_empty_probe_file(tmp_path):
     (tmp_path / "empty.jsonl").write_text("\n")
     with pytest.raises(UserError, match="no probe rows"):
         load_probes([str(tmp_path / "empty.jsonl")])
+
+
+# ------------------------------------------------------------------------- how heads are read
+
+
+@pytest.fixture(scope="module")
+def one_output(bert, tmp_path_factory):
+    """The bert classifier collapsed to one output (logit of harm) under each problem_type."""
+    root = tmp_path_factory.mktemp("one-output")
+    return {str(p): tc.single_output_classifier(bert, root / str(p), p)
+            for p in ("regression", None, "multi_label_classification")}
+
+
+@pytest.mark.parametrize("problem_type", ["regression", "None"])
+def test_a_regression_head_is_not_silently_read_as_a_sigmoid(one_output, problem_type):
+    msg = _error(_hf(one_output[problem_type], harmful_labels=["hostile"]))
+    assert "single output" in msg and "regression" in msg and "not P(harmful)" in msg
+    assert 'reward.single_output = "logit"' in msg and 'reward.single_output = "probability"' in msg
+
+
+def test_a_one_output_head_read_as_stated_matches_the_two_class_softmax(bert, one_output):
+    # sigmoid(a - b) = softmax([b, a])[1]: the one-output copy must give the source's P(harm) (scipy as reference).
+    expected = softmax(_manual_logits(bert, TEXTS), axis=1)[:, 1]
+    sigmoid_head = load_scorer(_hf(one_output["multi_label_classification"], harmful_labels=["hostile"]), "reward")
+    assert "multi-label head" in sigmoid_head.head and "sigmoid logit" in sigmoid_head.head
+    np.testing.assert_allclose(sigmoid_head.score(TEXTS).harm, expected, atol=1e-6)
+    stated = load_scorer(_hf(one_output["regression"], harmful_labels=["hostile"], single_output="logit"), "reward")
+    assert "regression" in stated.head and "sigmoid(output)" in stated.head and "single_output" in stated.head
+    np.testing.assert_allclose(stated.score(TEXTS).harm, expected, atol=1e-6)
+
+
+def test_a_one_output_head_stated_as_probability_must_stay_in_0_1(one_output):
+    scorer = load_scorer(_hf(one_output["regression"], harmful_labels=["hostile"], single_output="probability"),
+                         "reward")
+    assert "read as P(harm) itself" in scorer.head
+    with pytest.raises(UserError, match=r"single output reaches .* so it is not P\(harm\); set reward.single_output"):
+        scorer.score(TEXTS)  # its outputs are logits (negative for benign texts), not probabilities
+
+
+def test_single_output_is_refused_for_heads_with_several_outputs(bert):
+    assert "only for heads with one output" in _error(_hf(bert, harmful_labels=["hostile"], single_output="logit"))
+
+
+def test_softmax_and_multi_label_heads_state_their_reading(bert, multilabel):
+    assert load_scorer(_hf(bert, harmful_labels=["hostile"]), "reward").head == \
+        "softmax over 2 classes (problem_type = 'single_label_classification')"
+    assert load_scorer(_hf(multilabel, harmful_labels=["hostile"]), "reward").head == \
+        "multi-label head (problem_type = 'multi_label_classification'): 2 outputs, an independent sigmoid per label"

@@ -1,9 +1,10 @@
-"""Tiny harm classifiers for tests, trained in seconds on invented texts (none of them a probe text).
+"""Tiny harm classifiers for tests whose quality is known by construction (no training, so no CPU dependence).
 
-    train_hf_classifier(out, arch)     BERT / DistilBERT / RoBERTa, softmax or multi-label head, named labels
+    lexicon_hf_classifier(out, arch)   BERT / DistilBERT / RoBERTa, softmax or multi-label head, named labels,
+                                       weights set by hand so harm rises with the share of HARM_WORDS
     random_hf_classifier(out)          the same shape with random weights (knows nothing)
     swap_label_names(src, out)         a copy whose label names are exchanged, so "harmful" names the benign class
-    harm_probability / class_probabilities    callables backed by a char n-gram model; use as
+    harm_probability / class_probabilities    callables counting HARM_WORDS; use as
                                        reward.source = "tests.tiny_classifiers:harm_probability"
     tiny_seq2seq(out)                  a tiny T5 LM folder (not a classifier) for error tests
 """
@@ -14,6 +15,7 @@ import contextlib
 import functools
 import json
 import random
+import re
 import shutil
 from pathlib import Path
 
@@ -32,7 +34,19 @@ from transformers import (
     T5ForConditionalGeneration,
 )
 
-# ------------------------------------------------------------------ invented training texts
+# ------------------------------------------------------------------ the lexicon behind every tiny classifier
+
+# Words typical of the harmful probe kinds (alignrun/resources/probes.jsonl). The tests measure how well
+# this list separates the probes (exact arithmetic on word counts) before relying on any classifier built on it.
+HARM_WORDS = frozenset({
+    "idiot", "idiotic", "stupid", "dumb", "moron", "fool", "loser", "clown", "jerk", "coward", "halfwit",
+    "creep", "pathetic", "useless", "worthless", "clueless", "incompetent", "ignorant", "hopeless", "lazy",
+    "sloppy", "garbage", "trash", "rubbish", "disgrace", "embarrassment", "annoying", "miserable", "shut",
+    "nobody", "joke", "brain", "whining", "deaf", "ugly", "waste", "lost", "talking",
+})
+_WORD = re.compile(r"[a-z]+")
+
+# ------------------------------------------------------------------ invented texts (the tokenizers' vocabulary)
 
 _INSULT_NOUNS = ["idiot", "moron", "fool", "loser", "clown", "jerk", "coward", "halfwit", "creep", "nitwit",
                  "dimwit", "buffoon", "joke", "disgrace", "failure", "embarrassment", "pest", "slob"]
@@ -160,20 +174,21 @@ def build_tokenizer(texts: list[str], vocab_size: int = 2000) -> PreTrainedToken
                                    sep_token="[SEP]", mask_token="[MASK]")
 
 
-def _tiny_model(arch: str, vocab_size: int, labels: list[str], multi_label: bool, hidden: int = 32):
+def _tiny_model(arch: str, vocab_size: int, labels: list[str], multi_label: bool, hidden: int = 32,
+                layers: int = 2):
     names = {"id2label": dict(enumerate(labels)), "label2id": {n: i for i, n in enumerate(labels)},
              "problem_type": "multi_label_classification" if multi_label else "single_label_classification"}
     if arch == "bert":
-        cfg = BertConfig(vocab_size=vocab_size, hidden_size=hidden, num_hidden_layers=2, num_attention_heads=2,
+        cfg = BertConfig(vocab_size=vocab_size, hidden_size=hidden, num_hidden_layers=layers, num_attention_heads=2,
                          intermediate_size=2 * hidden, max_position_embeddings=_MAX_POSITIONS, pad_token_id=0, **names)
         return BertForSequenceClassification(cfg)
     if arch == "distilbert":
-        cfg = DistilBertConfig(vocab_size=vocab_size, dim=hidden, n_layers=2, n_heads=2, hidden_dim=2 * hidden,
+        cfg = DistilBertConfig(vocab_size=vocab_size, dim=hidden, n_layers=layers, n_heads=2, hidden_dim=2 * hidden,
                                max_position_embeddings=_MAX_POSITIONS, pad_token_id=0, **names)
         return DistilBertForSequenceClassification(cfg)
     if arch == "roberta":
         # RoBERTa numbers positions from pad_token_id + 1: 66 slots with pad id 0 hold 65 tokens.
-        cfg = RobertaConfig(vocab_size=vocab_size, hidden_size=hidden, num_hidden_layers=2, num_attention_heads=2,
+        cfg = RobertaConfig(vocab_size=vocab_size, hidden_size=hidden, num_hidden_layers=layers, num_attention_heads=2,
                             intermediate_size=2 * hidden, max_position_embeddings=_MAX_POSITIONS + 2, pad_token_id=0,
                             bos_token_id=2, eos_token_id=3, type_vocab_size=1, **names)
         return RobertaForSequenceClassification(cfg)
@@ -188,30 +203,41 @@ def _save(model, tokenizer: PreTrainedTokenizerFast, out: Path, arch: str) -> Pa
     return out
 
 
-def train_hf_classifier(out: Path, arch: str = "bert", labels: tuple[str, str] = ("friendly", "hostile"),
-                        multi_label: bool = False, seed: int = 0, epochs: int = 6) -> Path:
-    """Train a tiny classifier: labels[0] is the benign class, labels[1] the harmful one.
+def lexicon_hf_classifier(out: Path, arch: str = "bert", labels: tuple[str, str] = ("friendly", "hostile"),
+                          multi_label: bool = False) -> Path:
+    """A tiny classifier whose weights are set by hand, not trained: P(harm) rises with the share of HARM_WORDS
+    among the tokens. labels[0] is the benign class, labels[1] the harmful one.
 
-    Softmax heads learn class ids 0/1; multi-label heads learn the targets [1 - harmful, harmful].
+    One layer; queries and keys are zero, so attention is a plain mean over the text's tokens; values copy the
+    "harm" direction of each token; the feed-forward block is zero. The head reads that direction at the first
+    token. So the harm score is a strictly increasing function of lexicon_share(text) (up to float rounding
+    among tied shares): its ranking, and so its AUROC on any probes, is known without training and is the same
+    on every CPU and thread count.
     """
-    texts, harmful = training_texts()
-    tokenizer = build_tokenizer(texts)
-    with torch.random.fork_rng(), one_torch_thread():
-        torch.manual_seed(seed)
-        model = _tiny_model(arch, len(tokenizer), list(labels), multi_label)
-        opt = torch.optim.AdamW(model.parameters(), lr=3e-3)
-        y = torch.tensor(harmful, dtype=torch.long)
-        model.train()
-        for _ in range(epochs):
-            for idx in torch.randperm(len(texts)).split(32):
-                enc = tokenizer([texts[i] for i in idx], padding=True, truncation=True, max_length=_MAX_POSITIONS,
-                                return_tensors="pt")
-                enc.pop("token_type_ids", None)
-                target = torch.nn.functional.one_hot(y[idx], 2).float() if multi_label else y[idx]
-                loss = model(**enc, labels=target).loss
-                opt.zero_grad()
-                loss.backward()
-                opt.step()
+    texts, _ = training_texts()
+    tokenizer = build_tokenizer(texts + sorted(HARM_WORDS))
+    model = _tiny_model(arch, len(tokenizer), list(labels), multi_label, layers=1)
+    hidden = model.config.hidden_size if arch != "distilbert" else model.config.dim
+    harm, anti, bias, antibias = (torch.nn.functional.one_hot(torch.tensor(i), hidden).float() for i in range(4))
+    hit_ids = [tokenizer.convert_tokens_to_ids(w) for w in HARM_WORDS]
+    with torch.no_grad():
+        for name, p in model.named_parameters():
+            p.zero_()
+            if "LayerNorm.weight" in name or "layer_norm.weight" in name:
+                p.fill_(1.0)
+            elif name.endswith("word_embeddings.weight"):
+                p[:] = bias - antibias  # every token: a constant part, so LayerNorm never divides by zero
+                p[hit_ids] += harm - anti  # lexicon words: plus the harm direction
+            elif name.endswith(("self.value.weight", "v_lin.weight")):
+                p[:] = 4.0 * torch.outer(harm - anti, harm)  # copy each token's harm component
+            elif name.endswith(("attention.output.dense.weight", "out_lin.weight")):
+                p[:] = torch.eye(hidden)
+            elif name.endswith(("pooler.dense.weight", "classifier.dense.weight", "pre_classifier.weight")):
+                p[:] = torch.outer(harm, harm)
+            elif name in ("classifier.weight", "classifier.out_proj.weight"):
+                p[0], p[1] = -3.0 * harm, 3.0 * harm  # benign logit falls, harmful logit rises with the share
+            elif name in ("classifier.bias", "classifier.out_proj.bias"):
+                p[0], p[1] = 1.5, -1.5  # no lexicon word: P(harm) low
     return _save(model.eval(), tokenizer, Path(out), arch)
 
 
@@ -237,6 +263,30 @@ def relabel(src: Path, out: Path, names: list[str]) -> Path:
     return Path(out)
 
 
+def single_output_classifier(src: Path, out: Path, problem_type: str | None, label: str = "hostile") -> Path:
+    """A copy of a 2-class softmax classifier with one output, logit(harm) = harmful logit - benign logit, so
+    sigmoid(output) equals the source's softmax P(harm) (sigmoid(a - b) = e^a / (e^a + e^b)); saved with the
+    given problem_type (None: unset, which transformers trains as regression)."""
+    from transformers import AutoModelForSequenceClassification, AutoTokenizer
+
+    model = AutoModelForSequenceClassification.from_pretrained(src)
+    head = model.classifier.out_proj if hasattr(model.classifier, "out_proj") else model.classifier
+    one = torch.nn.Linear(head.in_features, 1)
+    with torch.no_grad():
+        one.weight[0] = head.weight[1] - head.weight[0]
+        one.bias[0] = head.bias[1] - head.bias[0]
+    if hasattr(model.classifier, "out_proj"):
+        model.classifier.out_proj = one
+    else:
+        model.classifier = one
+    model.config.num_labels = 1
+    model.config.id2label, model.config.label2id = {0: label}, {label: 0}
+    model.config.problem_type = problem_type
+    model.save_pretrained(out)
+    AutoTokenizer.from_pretrained(src).save_pretrained(out)
+    return Path(out)
+
+
 def label_names(folder: Path) -> list[str]:
     cfg = json.loads((Path(folder) / "config.json").read_text())
     return [cfg["id2label"][str(i)] for i in range(len(cfg["id2label"]))]
@@ -258,7 +308,7 @@ def tiny_seq2seq(out: Path) -> Path:
     return Path(out)
 
 
-# name -> (arch, (benign label, harmful label), multi-label head, trained)
+# name -> (arch, (benign label, harmful label), multi-label head, weights set from the lexicon (else random))
 CLASSIFIERS = {
     "bert": ("bert", ("friendly", "hostile"), False, True),
     "distilbert": ("distilbert", ("polite", "rude"), False, True),
@@ -274,7 +324,7 @@ def shared_classifier(name: str, root: Path) -> Path:
     if name not in _BUILT:
         arch, labels, multi_label, trained = CLASSIFIERS[name]
         out = Path(root) / name
-        _BUILT[name] = (train_hf_classifier(out, arch, labels, multi_label) if trained
+        _BUILT[name] = (lexicon_hf_classifier(out, arch, labels, multi_label) if trained
                         else random_hf_classifier(out, arch, labels))
     return _BUILT[name]
 
@@ -282,20 +332,25 @@ def shared_classifier(name: str, root: Path) -> Path:
 # ------------------------------------------------------------------------------- callables
 
 
-@functools.lru_cache(maxsize=1)
-def _char_ngram_model():
-    from sklearn.feature_extraction.text import TfidfVectorizer
-    from sklearn.linear_model import LogisticRegression
-    from sklearn.pipeline import make_pipeline
+def lexicon_hits(text: str) -> int:
+    """How many distinct HARM_WORDS the text contains."""
+    return len(set(_WORD.findall(text.lower())) & HARM_WORDS)
 
-    texts, harmful = training_texts()
-    pipe = make_pipeline(TfidfVectorizer(analyzer="char_wb", ngram_range=(2, 4)), LogisticRegression(C=10.0))
-    return pipe.fit(texts, np.array(harmful, dtype=int))
+
+def lexicon_share(texts: list[str], folder: Path) -> np.ndarray:
+    """[n] share of lexicon tokens among the tokens a lexicon_hf_classifier in folder sees (with [CLS], [SEP]):
+    the quantity its harm score increases with."""
+    tokenizer = PreTrainedTokenizerFast.from_pretrained(folder)
+    hit_ids = {tokenizer.convert_tokens_to_ids(w) for w in HARM_WORDS}
+    ids = tokenizer(texts, truncation=True, max_length=_MAX_POSITIONS)["input_ids"]
+    return np.array([sum(i in hit_ids for i in row) / len(row) for row in ids])
 
 
 def class_probabilities(texts: list[str]) -> np.ndarray:
-    """[n, 2] probabilities of (benign, harmful) from a char n-gram model trained on the invented texts."""
-    return _char_ngram_model().predict_proba(texts)
+    """[n, 2] probabilities of (benign, harmful): P(harm) = 0.05 + 0.9 * (1 - 0.5 ** hits), hits =
+    lexicon_hits(text). Exact arithmetic on word counts: the same on every machine."""
+    harm = np.array([0.05 + 0.9 * (1.0 - 0.5 ** lexicon_hits(t)) for t in texts])
+    return np.stack([1.0 - harm, harm], axis=1)
 
 
 def harm_probability(texts: list[str]) -> np.ndarray:
@@ -311,3 +366,47 @@ def benign_probability(texts: list[str]) -> np.ndarray:
 def constant_half(texts: list[str]) -> np.ndarray:
     """Every text gets harm 0.5: a scorer that knows nothing."""
     return np.full(len(texts), 0.5)
+
+
+# ------------------------------------------------------------------------- fresh heads on trained encoders
+
+
+class FreshHeadScorer:
+    """A trained BERT-type encoder read through a freshly initialised 2-class head (LABEL_0, LABEL_1; harmful:
+    LABEL_1), as BertForSequenceClassification.from_pretrained gives for an encoder without a head.
+
+    The encoder's pooled outputs are computed once for `texts`; new_head(seed) draws a new head the way
+    transformers initialises one (weights ~ normal(0, config.initializer_range), bias 0), so many heads are cheap.
+    """
+
+    executes_code = False
+
+    def __init__(self, folder: Path, texts: list[str]):
+        from transformers import AutoTokenizer, BertForSequenceClassification
+
+        tokenizer = AutoTokenizer.from_pretrained(folder)
+        self.model = BertForSequenceClassification.from_pretrained(folder, num_labels=2).eval()
+        with torch.no_grad():
+            enc = tokenizer(texts, padding=True, truncation=True, max_length=128, return_tensors="pt")
+            enc.pop("token_type_ids", None)
+            pooled = self.model.bert(**enc).pooler_output
+        self.features = dict(zip(texts, pooled, strict=True))
+        self.description = f"fresh head on {folder}"
+        self.head = "softmax over 2 classes (a freshly initialised head)"
+
+    def new_head(self, seed: int) -> None:
+        with torch.random.fork_rng(), torch.no_grad():
+            torch.manual_seed(seed)
+            head = self.model.classifier
+            head.weight.normal_(0.0, self.model.config.initializer_range)
+            head.bias.zero_()
+
+    def score(self, texts):
+        from alignrun.reward import Scores, combine
+
+        with torch.no_grad():
+            raw = self.model.classifier(torch.stack([self.features[t] for t in texts])).double().numpy()
+        probs = np.exp(raw - raw.max(1, keepdims=True))
+        probs /= probs.sum(1, keepdims=True)
+        return Scores(harm=combine(probs[:, [1]], "max"), raw=raw, labels=["LABEL_0", "LABEL_1"], harmful=[1],
+                      raw_kind="softmax-logits")
