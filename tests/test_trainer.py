@@ -20,7 +20,7 @@ from transformers import (
 from alignrun.config import BaseSection, LoraSection, ReferenceSection, load_config
 from alignrun.errors import UserError
 from alignrun.models import build_policy, lora_targets, wrap_lora
-from alignrun.rollout import rollout
+from alignrun.rollout import response_mask, rollout
 from alignrun.trainer import run_experiment, step_prompts
 from tests import token_reward
 
@@ -46,6 +46,14 @@ def _write_config(folder: Path, model: Path, prompts: list[str], **sections: dic
     path = folder / "experiment.toml"
     path.write_text(tomli_w.dumps(body))
     return path
+
+
+def _perturb_lora_b(policy) -> None:
+    """LoRA's B starts at zero (Hu et al. 2021), where policy and base agree whatever the code does: give B values."""
+    with torch.no_grad():
+        for name, p in policy.lm.named_parameters():
+            if "lora_B" in name:
+                p.normal_(std=0.05, generator=torch.Generator().manual_seed(len(name)))
 
 
 PROMPTS = [f"Customer {i}: my order number {i * 7} has not arrived at the {['north', 'south', 'east'][i % 3]} depot."
@@ -81,6 +89,68 @@ def test_policy_equals_reference_at_step_zero_and_generation_logprobs_are_exact(
     forced = torch.log_softmax(logits.float(), -1).gather(-1, ro.response_ids.unsqueeze(-1)).squeeze(-1)
     assert torch.allclose(forced * ro.response_mask, ro.logp, atol=1e-5)
     assert torch.allclose(values * ro.response_mask, ro.values, atol=1e-5)
+
+
+def _with_saved_generation_settings(folder: Path, model: Path) -> Path:
+    """A copy of a tiny model whose saved generation settings reshape the distribution, as released BART,
+    Pegasus and Marian configs do: EOS forced at the limit, no repeated token, a minimum length, a repetition
+    penalty and a suppressed token."""
+    import shutil
+
+    from transformers import GenerationConfig
+
+    shutil.copytree(model, folder)
+    saved = GenerationConfig.from_pretrained(model)
+    for key, value in {"forced_eos_token_id": saved.eos_token_id, "no_repeat_ngram_size": 1, "min_new_tokens": 4,
+                       "repetition_penalty": 3.0, "suppress_tokens": [7]}.items():
+        setattr(saved, key, value)
+    saved.save_pretrained(folder)
+    return folder
+
+
+def _teacher_forced_logits(policy, ids: torch.Tensor, mask: torch.Tensor, sequences: torch.Tensor) -> torch.Tensor:
+    with torch.no_grad():
+        logits, _ = policy.net(ids, mask, sequences[:, :-1])
+    return logits.float()
+
+
+@pytest.mark.parametrize("arch", ["t5", "bart"])
+def test_sampling_ignores_the_models_saved_generation_settings(tmp_path: Path, tiny_models, arch) -> None:
+    # Stored old log-probs must be those of the distribution the tokens were drawn from (Huang et al. 2024,
+    # sampling details; from memory): whatever the model folder's generation_config says.
+    from transformers import GenerationConfig
+
+    from alignrun.rollout import encode_prompts, sample
+
+    folder = _with_saved_generation_settings(tmp_path / arch, tiny_models[arch])
+    torch.manual_seed(0)
+    policy = build_policy(BaseSection(model=str(folder)), LoraSection(rank=4), ReferenceSection(), CPU)
+    _perturb_lora_b(policy)
+    ids, mask = encode_prompts(policy.tokenizer, PROMPTS[:8], 32, CPU)
+    eos = policy.tokenizer.eos_token_id
+    # the saved settings would bite: generate() as the folder says ends every reply in EOS (forced at the limit)
+    saved = GenerationConfig.from_pretrained(folder)
+    with torch.no_grad():
+        forced = policy.lm.generate(input_ids=ids, attention_mask=mask, generation_config=saved, max_new_tokens=6,
+                                    do_sample=False)
+    assert (forced[:, 1:] == eos).any(dim=1).all()
+    # greedy: every token is the argmax of the policy's own teacher-forced logits
+    seqs, logp, _ = sample(policy, ids, mask, 6, do_sample=False, with_values=False)
+    logits = _teacher_forced_logits(policy, ids, mask, seqs)
+    real = response_mask(seqs[:, 1:], eos).bool()
+    assert torch.equal(logits.argmax(-1)[real], seqs[:, 1:][real])
+    assert not torch.equal(seqs, forced)
+    # sampling: stored log-probs equal a teacher-forced forward (STACK-NOTES: within 1e-6 in eval mode)
+    torch.manual_seed(1)
+    ro = rollout(policy, PROMPTS[:8], 32, 6, CPU)
+    logits = _teacher_forced_logits(policy, ro.prompt_ids, ro.prompt_mask,
+                                    torch.cat([ro.decoder_input, ro.decoder_input[:, -1:]], dim=1))
+    teacher = torch.log_softmax(logits, -1).gather(-1, ro.response_ids.unsqueeze(-1)).squeeze(-1)
+    assert torch.allclose(teacher * ro.response_mask, ro.logp, atol=1e-5)
+    # with the saved settings put back, sampling refuses: the drawn tokens would not match the stored log-probs
+    policy.lm.get_base_model().generation_config = saved
+    with pytest.raises(UserError, match="changed the model's distribution"):
+        sample(policy, ids, mask, 6)
 
 
 def test_reference_shares_the_base_weights(tiny_models) -> None:
