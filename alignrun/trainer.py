@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import copy
 import json
 import platform
 import random
@@ -96,11 +97,11 @@ def ppo_update(net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerat
             pl, clip_frac, approx_kl = ppo.policy_loss(logp, part.logp, advantages[idx], mask, p.clip_epsilon)
             vl, vclip = ppo.value_loss(values.float(), part.values, returns[idx], mask, p.value_clip)
             loss = pl + p.value_weight * vl
-            if not torch.isfinite(loss):
-                raise NonFinite(f"loss is {loss.item()} at step {step + 1}")
             optimizer.zero_grad(set_to_none=True)
             accelerator.backward(loss)
-            accelerator.clip_grad_norm_(net.parameters(), p.max_grad_norm)
+            grad_norm = accelerator.clip_grad_norm_(net.parameters(), p.max_grad_norm)
+            if not (torch.isfinite(loss) and torch.isfinite(torch.as_tensor(grad_norm))):
+                raise NonFinite(f"loss is {loss.item()} (gradient norm {float(grad_norm)}) at step {step + 1}")
             optimizer.step()
             with torch.no_grad():
                 ent = ppo.masked_mean(entropy_from_logits(logits), mask)
@@ -156,17 +157,48 @@ def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Opti
 
 # ---------------------------------------------------------------- checkpoints
 
+def rng_state() -> dict[str, Any]:
+    """This process's random number generators (torch CPU, Python, numpy) in a form torch.save keeps."""
+    np_state: tuple[Any, ...] = np.random.get_state(legacy=True)  # type: ignore[assignment]
+    return {"torch": torch.get_rng_state(), "python": random.getstate(),
+            "numpy": [np_state[0], torch.from_numpy(np_state[1].astype(np.int64)), *np_state[2:]]}
+
+
+def set_rng_state(state: dict[str, Any]) -> None:
+    torch.set_rng_state(state["torch"])
+    py = state["python"]
+    random.setstate((py[0], tuple(py[1]), py[2]))
+    npst = state["numpy"]
+    np.random.set_state((npst[0], npst[1].numpy().astype(np.uint32), *npst[2:]))
+
+
+def snapshot(net: torch.nn.Module, optimizer: torch.optim.Optimizer, controller: ppo.KLController) -> dict[str, Any]:
+    """Everything a step changes: trainable weights (adapter, value head), optimiser state with its step counters,
+    the KL controller and the random generators; `restore` puts it back after a NaN/inf mid-step."""
+    return {"weights": {n: p.detach().clone() for n, p in net.named_parameters() if p.requires_grad},
+            "optimizer": copy.deepcopy(optimizer.state_dict()), "kl_controller": controller.state_dict(),
+            "rng": rng_state()}
+
+
+def restore(state: dict[str, Any], net: torch.nn.Module, optimizer: torch.optim.Optimizer,
+            controller: ppo.KLController) -> None:
+    with torch.no_grad():
+        for name, p in net.named_parameters():
+            if p.requires_grad:
+                p.copy_(state["weights"][name])
+                p.grad = None
+    optimizer.load_state_dict(state["optimizer"])
+    controller.load_state_dict(state["kl_controller"])
+    set_rng_state(state["rng"])
+
+
 def save_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimizer,
                     controller: ppo.KLController, step: int) -> None:
     """Adapter, value head, optimiser, KL controller, RNG states and data position (= step), atomically."""
     tmp = staging_folder(folder)
     save_adapter(policy, tmp / "adapter")
-    np_state: tuple[Any, ...] = np.random.get_state(legacy=True)  # type: ignore[assignment]
-    torch.save({
-        "step": step, "optimizer": optimizer.state_dict(), "kl_controller": controller.state_dict(),
-        "rng_torch": torch.get_rng_state(), "rng_python": random.getstate(),
-        "rng_numpy": [np_state[0], torch.from_numpy(np_state[1].astype(np.int64)), *np_state[2:]],
-    }, tmp / "trainer_state.pt")
+    torch.save({"step": step, "optimizer": optimizer.state_dict(), "kl_controller": controller.state_dict(),
+                "rng": rng_state()}, tmp / "trainer_state.pt")
     write_json_atomic(tmp / "checkpoint.json", {"step": step})
     replace_folder(tmp, folder)
 
@@ -177,11 +209,7 @@ def load_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimiz
     state = torch.load(folder / "trainer_state.pt", weights_only=True)
     optimizer.load_state_dict(state["optimizer"])
     controller.load_state_dict(state["kl_controller"])
-    torch.set_rng_state(state["rng_torch"])
-    py = state["rng_python"]
-    random.setstate((py[0], tuple(py[1]), py[2]))
-    npst = state["rng_numpy"]
-    np.random.set_state((npst[0], npst[1].numpy().astype(np.uint32), *npst[2:]))
+    set_rng_state(state["rng"])
     return int(state["step"])
 
 
@@ -283,9 +311,11 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                 while step < cfg.ppo.steps:
                     prompts = step_prompts(split.train, step, cfg.ppo.prompts_per_step, cfg.run.seed)
                     mine = prompts[accelerator.process_index * per_proc:(accelerator.process_index + 1) * per_proc]
+                    before_step = snapshot(net, optimizer, controller)
                     try:
                         row = train_step(policy, net, optimizer, accelerator, scorer, controller, mine, cfg, step, device)
                     except NonFinite as exc:
+                        restore(before_step, net, optimizer, controller)  # minibatches before the NaN are undone
                         if main:
                             save_checkpoint(ckpt, policy, optimizer, controller, step)
                             save_adapter(policy, out / "adapter")

@@ -248,3 +248,57 @@ def test_reward_for_chosen_tokens_raises_their_frequency(tmp_path: Path, tiny_mo
     before, after = frequency("eval_before.jsonl"), frequency("eval_after.jsonl")
     print(f"{scope}: frequency of the rewarded tokens {before:.4f} -> {after:.4f}")
     assert after > 2 * before + 0.005, (tokens, before, after)
+
+
+def _same(a, b) -> bool:
+    """Bit-for-bit equality of nested checkpoint contents (tensors compared with torch.equal)."""
+    if isinstance(a, torch.Tensor):
+        return isinstance(b, torch.Tensor) and a.dtype == b.dtype and torch.equal(a, b)
+    if isinstance(a, dict):
+        return isinstance(b, dict) and a.keys() == b.keys() and all(_same(a[k], b[k]) for k in a)
+    if isinstance(a, (list, tuple)):
+        return isinstance(b, (list, tuple)) and len(a) == len(b) and all(_same(x, y) for x, y in zip(a, b))
+    return a == b
+
+
+@pytest.mark.parametrize("where", ["reward", "third-minibatch-loss"])
+def test_a_nan_mid_step_saves_exactly_the_clean_checkpoint_before_that_step(tmp_path: Path, tiny_models,
+                                                                            monkeypatch, where: str) -> None:
+    # Common practice: a NaN/inf step is discarded whole. The checkpoint left behind must be bit-for-bit the one
+    # of a clean run stopped at the step before: adapter, value head, AdamW moments and step counters, beta, RNG.
+    from alignrun import ppo
+    from tests import tiny_run
+
+    def experiment(name: str, steps: int) -> Path:
+        exp = tiny_run.write_tiny_experiment(tmp_path / name, tiny_models["t5"], steps=steps, checkpoint_every=1,
+                                             reward_source=f"{tiny_run.MODULE}:scripted_harm")
+        body = {**exp.body, "ppo": {**exp.body["ppo"], "epochs": 2}, "kl": {"coef": 0.05, "target": 1.0}}
+        return tiny_run.write_config(exp.config, body)
+
+    tiny_run.reset_call_counts()
+    run_experiment(load_config(experiment("clean", 2)), tmp_path / "clean" / "run", quiet=True)
+    tiny_run.reset_call_counts()
+    if where == "reward":  # NaN rewards at step 3: sampling has already moved the RNG
+        monkeypatch.setenv(tiny_run.NAN_AT_ENV, str(tiny_run.call_of_step(3)))
+    else:  # the 3rd of step 3's 4 minibatches (2 epochs x 2): two updates of step 3 are already applied
+        calls = {"n": 0}
+        real_loss = ppo.policy_loss
+
+        def loss_nan_at_call_11(*args, **kwargs):
+            calls["n"] += 1
+            loss, clip_frac, approx_kl = real_loss(*args, **kwargs)
+            return (loss * float("nan") if calls["n"] == 2 * 4 + 3 else loss), clip_frac, approx_kl
+
+        monkeypatch.setattr(ppo, "policy_loss", loss_nan_at_call_11)
+    nan_run = tmp_path / "nan" / "run"
+    with pytest.raises(UserError, match=r"after step 2"):
+        run_experiment(load_config(experiment("nan", 4)), nan_run, quiet=True)
+    clean = tmp_path / "clean" / "run" / "checkpoint"
+    assert json.loads((nan_run / "checkpoint" / "checkpoint.json").read_text()) == {"step": 2}
+    for name in ("adapter_model.safetensors", "value_head.safetensors"):
+        assert (nan_run / "checkpoint" / "adapter" / name).read_bytes() == (clean / "adapter" / name).read_bytes()
+        assert (nan_run / "adapter" / name).read_bytes() == (clean / "adapter" / name).read_bytes()
+    kept = torch.load(nan_run / "checkpoint" / "trainer_state.pt", weights_only=True)
+    expected = torch.load(clean / "trainer_state.pt", weights_only=True)
+    assert kept["optimizer"]["state"][0]["step"] == 2 * 4  # AdamW counted the 8 updates of steps 1-2 only
+    assert _same(kept, expected)
