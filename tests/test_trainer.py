@@ -20,7 +20,7 @@ from transformers import (
 from alignrun.config import BaseSection, LoraSection, ReferenceSection, load_config
 from alignrun.errors import UserError
 from alignrun.models import build_policy, lora_targets, wrap_lora
-from alignrun.rollout import response_mask, rollout
+from alignrun.rollout import Rollout, response_mask, rollout
 from alignrun.trainer import run_experiment, step_prompts
 from tests import token_reward
 
@@ -72,23 +72,44 @@ def test_lora_trainable_count_matches_hu_et_al_worked_example() -> None:
     assert trainable == 36 * 8 * (512 + 512) == 294_912
 
 
+def _teacher_forced_logp(model, ro) -> torch.Tensor:
+    with torch.no_grad():
+        logits = model(input_ids=ro.prompt_ids, attention_mask=ro.prompt_mask, decoder_input_ids=ro.decoder_input).logits
+    return torch.log_softmax(logits.float(), -1).gather(-1, ro.response_ids.unsqueeze(-1)).squeeze(-1) * ro.response_mask
+
+
+@pytest.mark.parametrize("mode", ["adapters-off", "copy"])
 @pytest.mark.parametrize("arch", ["t5", "bart"])
-def test_policy_equals_reference_at_step_zero_and_generation_logprobs_are_exact(tiny_models, arch) -> None:
-    # LoRA's B starts at zero (Hu et al. 2021), so policy and adapter-disabled reference agree exactly.
+def test_reference_is_the_base_and_stored_logprobs_are_the_policys(tiny_models, arch, mode) -> None:
     torch.manual_seed(0)
-    policy = build_policy(BaseSection(model=str(tiny_models[arch])), LoraSection(rank=4), ReferenceSection(), CPU)
+    policy = build_policy(BaseSection(model=str(tiny_models[arch])), LoraSection(rank=4), ReferenceSection(mode=mode),
+                          CPU)
     ro = rollout(policy, PROMPTS[:6], 32, 10, CPU)
-    with policy.reference() as ref:  # one teacher-forced pass each: identical to the last bit
-        ref_logits = ref(input_ids=ro.prompt_ids, attention_mask=ro.prompt_mask, decoder_input_ids=ro.decoder_input).logits
-    assert torch.equal(ref_logits, policy.lm(input_ids=ro.prompt_ids, attention_mask=ro.prompt_mask,
-                                             decoder_input_ids=ro.decoder_input).logits)
-    # generation (KV cache) and the batched reference pass agree to float rounding
+    # LoRA's B starts at zero (Hu et al. 2021): at step 0 policy and reference agree to float rounding
     assert torch.allclose(ro.logp, ro.ref_logp, atol=1e-5)
-    # Old log-probs from the generation pass equal a teacher-forced forward (STACK-NOTES: within 1e-6).
-    logits, values = policy.net(ro.prompt_ids, ro.prompt_mask, ro.decoder_input)
-    forced = torch.log_softmax(logits.float(), -1).gather(-1, ro.response_ids.unsqueeze(-1)).squeeze(-1)
-    assert torch.allclose(forced * ro.response_mask, ro.logp, atol=1e-5)
+    # Beyond step 0 they must not: with B perturbed, the reference is still a freshly loaded base
+    _perturb_lora_b(policy)
+    torch.manual_seed(1)
+    ro = rollout(policy, PROMPTS[:6], 32, 10, CPU)
+    base = AutoModelForSeq2SeqLM.from_pretrained(tiny_models[arch]).eval()
+    from_base = _teacher_forced_logp(base, ro)
+    assert (ro.logp - from_base).abs().max() > 1e-2  # the adapters change the policy (the check has teeth)
+    assert torch.allclose(ro.ref_logp, from_base, atol=1e-5)
+    with policy.reference() as ref:
+        assert torch.allclose(_teacher_forced_logp(ref, ro), from_base, atol=1e-5)
+    # old log-probs and values from the generation pass equal a teacher-forced policy forward (STACK-NOTES: 1e-6)
+    assert torch.allclose(_teacher_forced_logp(policy.lm, ro), ro.logp, atol=1e-5)
+    with torch.no_grad():
+        _, values = policy.net(ro.prompt_ids, ro.prompt_mask, ro.decoder_input)
     assert torch.allclose(values * ro.response_mask, ro.values, atol=1e-5)
+
+
+def test_response_mask_keeps_the_first_eos_and_drops_what_follows() -> None:
+    # The end-of-sequence token is the reply's last action: it is scored and trained (Huang et al. 2024, EOS and
+    # padding handling; from memory). Worked by hand, EOS = 2, padding = 0.
+    ids = torch.tensor([[5, 6, 2, 0, 0], [5, 2, 7, 2, 0], [2, 0, 0, 0, 0], [5, 6, 7, 8, 9]])
+    expected = torch.tensor([[1, 1, 1, 0, 0], [1, 1, 0, 0, 0], [1, 0, 0, 0, 0], [1, 1, 1, 1, 1]], dtype=torch.float)
+    assert torch.equal(response_mask(ids, eos_id=2), expected)
 
 
 def _with_saved_generation_settings(folder: Path, model: Path) -> Path:
@@ -302,3 +323,60 @@ def test_a_nan_mid_step_saves_exactly_the_clean_checkpoint_before_that_step(tmp_
     expected = torch.load(clean / "trainer_state.pt", weights_only=True)
     assert kept["optimizer"]["state"][0]["step"] == 2 * 4  # AdamW counted the 8 updates of steps 1-2 only
     assert _same(kept, expected)
+
+
+def test_train_step_wiring(tmp_path: Path, tiny_models, monkeypatch) -> None:
+    """train_step feeds each PPO piece what the papers say, observed at the calls themselves: old log-probs are the
+    policy's (ratio 1 at the first minibatch; Schulman et al. 2017), advantages are whitened over real tokens only
+    (Huang et al. 2022), the KL controller sees the per-reply sum of k1 (Ziegler et al. 2019, KL per sample), and
+    the one optimiser step lowers the clipped surrogate loss (Schulman et al. 2017, eq. 7, minimised as -L)."""
+    from accelerate import Accelerator
+
+    from alignrun import ppo, trainer
+    from alignrun.reward import load_scorer
+
+    cfg = load_config(_write_config(
+        tmp_path, tiny_models["bart"], PROMPTS, reward={"source": "tests.tiny_run:keyword_harm"},
+        kl={"coef": 0.05, "target": 1.0},  # one minibatch of the whole batch, one epoch: one optimiser step
+        ppo={"prompts_per_step": 8, "minibatch": 8, "epochs": 1, "value_weight": 0.0, "learning_rate": 1e-3}))
+    torch.manual_seed(0)
+    policy = build_policy(cfg.base, cfg.lora, cfg.reference, CPU)
+    _perturb_lora_b(policy)  # policy != reference, so KL and ratios are not trivially 0 and 1
+    with torch.no_grad():  # make EOS likely so that replies end early and padding exists
+        policy.lm.get_base_model().final_logits_bias[0, policy.tokenizer.eos_token_id] = 5.0
+    seen: dict[str, list] = {"rollout": [], "policy_loss": [], "kl": [], "rows": []}
+    real_rollout, real_loss, real_update = trainer.rollout, ppo.policy_loss, ppo.KLController.update
+    real_select = Rollout.select
+    monkeypatch.setattr(Rollout, "select", lambda self, idx: seen["rows"].append(idx) or real_select(self, idx))
+    monkeypatch.setattr(trainer, "rollout", lambda *a, **k: seen["rollout"].append(real_rollout(*a, **k)) or seen["rollout"][-1])
+    monkeypatch.setattr(ppo, "policy_loss", lambda *a, **k: seen["policy_loss"].append([x.detach().clone() for x in a[:4]]) or real_loss(*a, **k))
+    monkeypatch.setattr(ppo.KLController, "update", lambda self, kl: seen["kl"].append(kl) or real_update(self, kl))
+    accelerator = Accelerator(cpu=True)
+    optimizer = torch.optim.AdamW([p for p in policy.net.parameters() if p.requires_grad], lr=1e-3, weight_decay=0.0)
+    net, optimizer = accelerator.prepare(policy.net, optimizer)
+    controller = ppo.KLController(beta=0.05, target=1.0)
+    row = trainer.train_step(policy, net, optimizer, accelerator, load_scorer(cfg.reward, "reward"), controller,
+                             PROMPTS[:8], cfg, 0, CPU)
+    ro = seen["rollout"][0].select(seen["rows"][0])  # the rows in the minibatch's (shuffled) order
+    mask = ro.response_mask.bool()
+    assert (~mask).any() and mask.sum(1).gt(1).any(), "precondition: some replies end early, some are longer"
+    (logp_new, logp_old, advantages, loss_mask), = seen["policy_loss"]
+    assert torch.equal(loss_mask, ro.response_mask)
+    # old log-probs are the policy's own: at the first minibatch the ratio is 1 (not pi / pi_ref)
+    assert (ro.logp - ro.ref_logp)[mask].abs().max() > 1e-3
+    assert torch.allclose(logp_new[mask], logp_old[mask], atol=1e-5)
+    # whitening over real tokens: mean 0, sample variance 1 there (numpy), 0 on padding
+    real = advantages[mask].double().numpy()
+    assert real.mean() == pytest.approx(0.0, abs=1e-5) and real.var(ddof=1) == pytest.approx(1.0, rel=1e-4)
+    assert (advantages[~mask] == 0).all()
+    # the controller and the metrics get the mean over replies of the per-reply sum of log pi - log pi_ref
+    per_reply = ((ro.logp - ro.ref_logp) * ro.response_mask).sum(1).mean()
+    assert seen["kl"] == [pytest.approx(float(per_reply), rel=1e-5)] and row["kl_mean"] == seen["kl"][0]
+    assert row["beta"] == 0.05 and controller.beta != 0.05
+    # the optimiser step was taken, in the direction that lowers -L: from ratio 1 (-L = -mean A = 0) downwards
+    with torch.no_grad():
+        logits, _ = policy.net(ro.prompt_ids, ro.prompt_mask, ro.decoder_input, ro.encoder_hidden)
+    after = torch.log_softmax(logits.float(), -1).gather(-1, ro.response_ids.unsqueeze(-1)).squeeze(-1)
+    before_loss = real_loss(logp_old, logp_old, advantages, ro.response_mask, 0.2)[0]
+    after_loss = real_loss(after, logp_old, advantages, ro.response_mask, 0.2)[0]
+    assert float(after_loss) < float(before_loss) - 1e-4
