@@ -247,7 +247,11 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
         "training": {"final_kl": last.get("kl_mean"), "final_beta": last.get("beta"),
                      "reward_first": history[0]["reward_mean"] if history else None,
                      "reward_last": last.get("reward_mean"), "kl_target": cfg.kl.target,
-                     "trained_prompts": len(split.train), "skipped_rows": len(split.skipped)},
+                     "trained_prompts": len(split.train), "skipped_rows": len(split.skipped),
+                     # replies cut at generation.max_new_tokens, scored and treated as ended (rollout.rollout)
+                     "truncated_share_mean": (sum(r.get("truncated_share", 0.0) for r in history) / len(history)
+                                              if history else None),
+                     "truncated_share_last": last.get("truncated_share")},
         "evaluation": {
             "prompts": len(before.prompts), "samples_per_prompt": cfg.evaluation.samples_per_prompt,
             "threshold": cfg.evaluation.harm_threshold, "prompt_digest": prompt_digest(before.prompts),

@@ -118,6 +118,13 @@ def reference_logprobs(policy: Policy, prompt_ids: torch.Tensor, prompt_mask: to
 
 def rollout(policy: Policy, prompts: list[str], max_prompt_tokens: int, max_new_tokens: int,
             device: torch.device) -> Rollout:
+    """Sample one reply per prompt with its bookkeeping.
+
+    A reply that reaches `max_new_tokens` without EOS is kept as it stands: it is scored like any other and
+    treated as ended, its last token getting the score and the value after it taken as 0 (ppo.gae), rather than
+    bootstrapped from the value of a continuation that was never sampled. The trainer logs the share of such
+    replies (metrics.jsonl `truncated_share`); a high share means max_new_tokens cuts replies short.
+    """
     tok = policy.tokenizer
     prompt_ids, prompt_mask = encode_prompts(tok, prompts, max_prompt_tokens, device)
     hidden = frozen_encoding(policy, prompt_ids, prompt_mask)

@@ -95,7 +95,7 @@ def ppo_update(net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerat
             logp = selective_log_softmax(logits, part.response_ids)
             mask = part.response_mask
             pl, clip_frac, approx_kl = ppo.policy_loss(logp, part.logp, advantages[idx], mask, p.clip_epsilon)
-            vl, vclip = ppo.value_loss(values.float(), part.values, returns[idx], mask, p.value_clip)
+            vl, vclip = ppo.value_loss(values.float(), part.values, returns[idx], mask, p.value_clip or None)
             loss = pl + p.value_weight * vl
             optimizer.zero_grad(set_to_none=True)
             accelerator.backward(loss)
@@ -142,14 +142,16 @@ def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Opti
     t3 = time.perf_counter()
     seq_kl = _gather_mean(accelerator, kl.sum(dim=1))
     beta = controller.beta
-    controller.update(seq_kl)
+    controller.update(seq_kl, episodes=len(prompts) * accelerator.num_processes)
     tokens = float(accelerator.gather(ro.response_mask.sum().reshape(1)).sum())
+    # a reply with no EOS was cut at generation.max_new_tokens; it is scored and treated as ended (rollout.rollout)
+    truncated = _gather_mean(accelerator, (ro.response_ids != policy.tokenizer.eos_token_id).all(dim=1).float())
     all_reward = accelerator.gather(reward)
     return {
         "step": step + 1, "reward_mean": float(all_reward.mean()), "reward_std": float(all_reward.std()),
         "harm_mean": _gather_mean(accelerator, torch.as_tensor(scores.harm, dtype=torch.float32)),
         "kl_mean": seq_kl, "beta": beta, **stats,
-        "length_mean": tokens / (len(prompts) * accelerator.num_processes),
+        "length_mean": tokens / (len(prompts) * accelerator.num_processes), "truncated_share": truncated,
         "rollout_s": t1 - t0, "reward_s": t2 - t1, "update_s": t3 - t2, "step_s": t3 - t0,
         "tokens_per_s": tokens / max(t3 - t0, 1e-9),
     }
@@ -295,9 +297,9 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
         before = _evaluate_once(out / "eval_before.jsonl", policy, heldout, scorer, judge, cfg, device, main, quiet,
                                 "before")
         optimizer = torch.optim.AdamW([p for p in policy.net.parameters() if p.requires_grad],
-                                      lr=cfg.ppo.learning_rate)
+                                      lr=cfg.ppo.learning_rate, weight_decay=cfg.ppo.weight_decay)
         net, optimizer = accelerator.prepare(policy.net, optimizer)
-        controller = ppo.KLController(beta=cfg.kl.coef, target=cfg.kl.target, gain=cfg.kl.gain)
+        controller = ppo.KLController(beta=cfg.kl.coef, target=cfg.kl.target, gain=cfg.kl.gain, horizon=cfg.kl.horizon)
         ckpt = out / "checkpoint"
         if resume and (ckpt / "checkpoint.json").exists():
             step = load_checkpoint(ckpt, policy, optimizer, controller)

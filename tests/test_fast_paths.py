@@ -133,6 +133,11 @@ def test_a_run_with_bf16_and_decoder_only_adapters_finishes(tmp_path: Path, tiny
     assert json.loads((tmp_path / "run" / "adapter" / "adapter_config.json").read_text())["target_modules"]
     rows = [json.loads(line) for line in (tmp_path / "run" / "metrics.jsonl").read_text().splitlines()]
     assert len(rows) == 2 and all(torch.isfinite(torch.tensor(r["policy_loss"])) for r in rows)
+    # the share of replies cut at max_new_tokens, per step and in the report (mean over steps, last step)
+    shares = [r["truncated_share"] for r in rows]
+    assert all(0 <= s <= 1 for s in shares)
+    assert report["training"]["truncated_share_mean"] == pytest.approx(sum(shares) / 2)
+    assert report["training"]["truncated_share_last"] == shares[-1]
 
 
 def _rss_file_mb() -> float:

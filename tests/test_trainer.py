@@ -293,7 +293,8 @@ def test_a_nan_mid_step_saves_exactly_the_clean_checkpoint_before_that_step(tmp_
     def experiment(name: str, steps: int) -> Path:
         exp = tiny_run.write_tiny_experiment(tmp_path / name, tiny_models["t5"], steps=steps, checkpoint_every=1,
                                              reward_source=f"{tiny_run.MODULE}:scripted_harm")
-        body = {**exp.body, "ppo": {**exp.body["ppo"], "epochs": 2}, "kl": {"coef": 0.05, "target": 1.0}}
+        body = {**exp.body, "ppo": {**exp.body["ppo"], "epochs": 2, "weight_decay": 0.01},
+                "kl": {"coef": 0.05, "target": 1.0}}
         return tiny_run.write_config(exp.config, body)
 
     tiny_run.reset_call_counts()
@@ -322,6 +323,7 @@ def test_a_nan_mid_step_saves_exactly_the_clean_checkpoint_before_that_step(tmp_
     kept = torch.load(nan_run / "checkpoint" / "trainer_state.pt", weights_only=True)
     expected = torch.load(clean / "trainer_state.pt", weights_only=True)
     assert kept["optimizer"]["state"][0]["step"] == 2 * 4  # AdamW counted the 8 updates of steps 1-2 only
+    assert kept["optimizer"]["param_groups"][0]["weight_decay"] == 0.01  # ppo.weight_decay reaches AdamW
     assert _same(kept, expected)
 
 
@@ -350,7 +352,8 @@ def test_train_step_wiring(tmp_path: Path, tiny_models, monkeypatch) -> None:
     monkeypatch.setattr(Rollout, "select", lambda self, idx: seen["rows"].append(idx) or real_select(self, idx))
     monkeypatch.setattr(trainer, "rollout", lambda *a, **k: seen["rollout"].append(real_rollout(*a, **k)) or seen["rollout"][-1])
     monkeypatch.setattr(ppo, "policy_loss", lambda *a, **k: seen["policy_loss"].append([x.detach().clone() for x in a[:4]]) or real_loss(*a, **k))
-    monkeypatch.setattr(ppo.KLController, "update", lambda self, kl: seen["kl"].append(kl) or real_update(self, kl))
+    monkeypatch.setattr(ppo.KLController, "update",
+                        lambda self, kl, **k: seen["kl"].append((kl, k)) or real_update(self, kl, **k))
     accelerator = Accelerator(cpu=True)
     optimizer = torch.optim.AdamW([p for p in policy.net.parameters() if p.requires_grad], lr=1e-3, weight_decay=0.0)
     net, optimizer = accelerator.prepare(policy.net, optimizer)
@@ -371,7 +374,12 @@ def test_train_step_wiring(tmp_path: Path, tiny_models, monkeypatch) -> None:
     assert (advantages[~mask] == 0).all()
     # the controller and the metrics get the mean over replies of the per-reply sum of log pi - log pi_ref
     per_reply = ((ro.logp - ro.ref_logp) * ro.response_mask).sum(1).mean()
-    assert seen["kl"] == [pytest.approx(float(per_reply), rel=1e-5)] and row["kl_mean"] == seen["kl"][0]
+    assert seen["kl"] == [(pytest.approx(float(per_reply), rel=1e-5), {"episodes": 8})]
+    assert row["kl_mean"] == seen["kl"][0][0]
+    # replies with no EOS were cut at max_new_tokens: their share is logged
+    no_eos = (ro.response_ids != policy.tokenizer.eos_token_id).all(dim=1)
+    assert row["truncated_share"] == pytest.approx(float(no_eos.float().mean()))
+    assert 0 < row["truncated_share"] < 1
     assert row["beta"] == 0.05 and controller.beta != 0.05
     # the optimiser step was taken, in the direction that lowers -L: from ratio 1 (-L = -mean A = 0) downwards
     with torch.no_grad():
