@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import contextlib
 import copy
+import dataclasses
 import json
 import platform
 import random
@@ -76,26 +77,51 @@ def step_prompts(train: list[str], step: int, per_step: int, seed: int) -> list[
     return out
 
 
+def minibatch_order(n: int, cfg: Experiment, step: int, processes: int) -> list[list[torch.Tensor]]:
+    """Row indices of every minibatch of every epoch of this step (a seeded shuffle per epoch)."""
+    mb = max(1, cfg.ppo.minibatch // processes)
+    gen = torch.Generator().manual_seed(cfg.run.seed * 100_003 + step)
+    return [list(torch.randperm(n, generator=gen).split(mb)) for _ in range(cfg.ppo.epochs)]
+
+
+def policy_forward(net: torch.nn.Module, part: Rollout, cfg: Experiment,
+                   device: torch.device) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+    """The update's forward: (fp32 logits [b, T, V], log-probs of the sampled tokens [b, T], values [b, T])."""
+    with autocast(cfg.base.precision, device):
+        logits, values = net(part.prompt_ids, part.prompt_mask, part.decoder_input, part.encoder_hidden)
+    logits = logits.float()
+    return logits, selective_log_softmax(logits, part.response_ids), values.float()
+
+
+@torch.no_grad()
+def update_forward_bookkeeping(net: torch.nn.Module, ro: Rollout, first_epoch: list[torch.Tensor],
+                               cfg: Experiment, device: torch.device) -> Rollout:
+    """Old log-probs and values from the update's own forward, minibatch by minibatch as the first epoch will run
+    it. Under bf16 the generation pass (KV cache, one position at a time) rounds differently from that forward,
+    by up to 1.6e-2 in log-ratio: the first minibatch would start off-ratio and step 0 would show a spurious KL."""
+    logp, values = torch.zeros_like(ro.logp), torch.zeros_like(ro.values)
+    for idx in first_epoch:
+        part = ro.select(idx)
+        _, logp[idx], values[idx] = policy_forward(net, part, cfg, device)
+    return dataclasses.replace(ro, logp=logp * ro.response_mask, values=values * ro.response_mask)
+
+
 def ppo_update(net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerator: Accelerator, ro: Rollout,
                advantages: torch.Tensor, returns: torch.Tensor, cfg: Experiment, step: int,
-               device: torch.device) -> dict[str, float]:
-    """Several epochs of clipped policy and value losses over minibatches (Schulman et al. 2017)."""
+               device: torch.device, order: list[list[torch.Tensor]] | None = None) -> dict[str, float]:
+    """Several epochs of clipped policy and value losses over minibatches (Schulman et al. 2017), in the order
+    `order` (default: minibatch_order's)."""
     p = cfg.ppo
-    n = ro.response_ids.shape[0]
-    mb = max(1, p.minibatch // accelerator.num_processes)
+    order = order or minibatch_order(ro.response_ids.shape[0], cfg, step, accelerator.num_processes)
     totals: dict[str, list[float]] = {"policy_loss": [], "value_loss": [], "clip_frac": [], "value_clip_frac": [],
                                       "approx_kl": [], "entropy": []}
-    gen = torch.Generator().manual_seed(cfg.run.seed * 100_003 + step)
-    for _ in range(p.epochs):
-        for idx in torch.randperm(n, generator=gen).split(mb):
+    for epoch in order:
+        for idx in epoch:
             part = ro.select(idx)
-            with autocast(cfg.base.precision, device):
-                logits, values = net(part.prompt_ids, part.prompt_mask, part.decoder_input, part.encoder_hidden)
-            logits = logits.float()
-            logp = selective_log_softmax(logits, part.response_ids)
+            logits, logp, values = policy_forward(net, part, cfg, device)
             mask = part.response_mask
             pl, clip_frac, approx_kl = ppo.policy_loss(logp, part.logp, advantages[idx], mask, p.clip_epsilon)
-            vl, vclip = ppo.value_loss(values.float(), part.values, returns[idx], mask, p.value_clip or None)
+            vl, vclip = ppo.value_loss(values, part.values, returns[idx], mask, p.value_clip or None)
             loss = pl + p.value_weight * vl
             optimizer.zero_grad(set_to_none=True)
             accelerator.backward(loss)
@@ -125,6 +151,9 @@ def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Opti
     t0 = time.perf_counter()
     with autocast(cfg.base.precision, device):
         ro = rollout(policy, prompts, cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens, device)
+    order = minibatch_order(len(prompts), cfg, step, accelerator.num_processes)
+    if cfg.base.precision == "bf16":
+        ro = update_forward_bookkeeping(net, ro, order[0], cfg, device)
     t1 = time.perf_counter()
     try:
         scores = scorer.score(ro.texts)
@@ -138,7 +167,7 @@ def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Opti
     advantages, returns = ppo.gae(rewards, ro.values, ro.response_mask, cfg.ppo.gamma, cfg.ppo.gae_lambda)
     if cfg.ppo.whiten_advantages:
         advantages = ppo.whiten(advantages, ro.response_mask)
-    stats = ppo_update(net, optimizer, accelerator, ro, advantages, returns, cfg, step, device)
+    stats = ppo_update(net, optimizer, accelerator, ro, advantages, returns, cfg, step, device, order)
     t3 = time.perf_counter()
     seq_kl = _gather_mean(accelerator, kl.sum(dim=1))
     beta = controller.beta
