@@ -8,6 +8,7 @@ zero (an empty generation) contributes nothing and never produces NaN.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import asdict, dataclass
 
 import torch
@@ -35,9 +36,22 @@ def masked_var(x: Tensor, mask: Tensor, unbiased: bool = True) -> Tensor:
     return var
 
 
-def whiten(x: Tensor, mask: Tensor, shift_mean: bool = True) -> Tensor:
-    """Normalise to mean 0 / variance 1 over the masked entries of the whole batch; 0 on padding."""
-    mean, var = masked_mean(x, mask), masked_var(x, mask)
+def moments(x: Tensor, mask: Tensor, total: Callable[[Tensor], Tensor] = lambda t: t) -> tuple[Tensor, Tensor]:
+    """Mean and unbiased variance of the masked entries; `total` sums a tensor over processes, so that with several
+    processes they are those of the whole batch. Variance 0 when there are fewer than 2 entries."""
+    keep = mask.bool()
+    count = total(keep.sum().to(x.dtype))
+    mean = total(torch.where(keep, x, torch.zeros_like(x)).sum()) / count.clamp(min=1)
+    squares = total(torch.where(keep, (x - mean) ** 2, torch.zeros_like(x)).sum())
+    # Bessel's correction: divide by n - 1 (common practice)
+    return mean, torch.where(count > 1, squares / (count - 1).clamp(min=1), torch.zeros_like(squares))
+
+
+def whiten(x: Tensor, mask: Tensor, shift_mean: bool = True,
+           total: Callable[[Tensor], Tensor] = lambda t: t) -> Tensor:
+    """Normalise to mean 0 / variance 1 over the masked entries of the whole batch (`total`: see moments); 0 on
+    padding."""
+    mean, var = moments(x, mask, total)
     whitened = (x - mean) * torch.rsqrt(var + 1e-8)  # per-batch advantage whitening (Huang et al. 2022)
     if not shift_mean:
         whitened = whitened + mean

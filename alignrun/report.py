@@ -222,6 +222,7 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
                  polarity: Any, scorer: Any, judge: Any, split: Any, wall_s: float, peak_rss_mb: float,
                  started: float) -> dict[str, Any]:
     from alignrun import evaluation
+    from alignrun.ppo import KLController
 
     sb, sa = evaluation.summarise(before, cfg), evaluation.summarise(after, cfg)
     change = evaluation.changes(before, after, cfg)
@@ -251,7 +252,12 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
                      # replies cut at generation.max_new_tokens, scored and treated as ended (rollout.rollout)
                      "truncated_share_mean": (sum(r.get("truncated_share", 0.0) for r in history) / len(history)
                                               if history else None),
-                     "truncated_share_last": last.get("truncated_share")},
+                     "truncated_share_last": last.get("truncated_share"),
+                     "kl_controller": {"rule": KLController(beta=cfg.kl.coef, target=cfg.kl.target, gain=cfg.kl.gain,
+                                                            horizon=cfg.kl.horizon).rule(),
+                                       "initial_beta": cfg.kl.coef, "target": cfg.kl.target,
+                                       "gain": None if cfg.kl.horizon else cfg.kl.gain,
+                                       "horizon": cfg.kl.horizon or None}},
         "evaluation": {
             "prompts": len(before.prompts), "samples_per_prompt": cfg.evaluation.samples_per_prompt,
             "threshold": cfg.evaluation.harm_threshold, "prompt_digest": prompt_digest(before.prompts),

@@ -47,7 +47,7 @@ MUTATIONS = (
              "_gather_mean(accelerator, kl.sum(dim=1))",
              "_gather_mean(accelerator, ppo.masked_mean(kl, ro.response_mask, dim=1))", (WIRING,)),
     Mutation("whitening over padding", "alignrun/trainer.py",
-             "ppo.whiten(advantages, ro.response_mask)", "ppo.whiten(advantages, torch.ones_like(ro.response_mask))",
+             "ppo.whiten(advantages, ro.response_mask,", "ppo.whiten(advantages, torch.ones_like(ro.response_mask),",
              (WIRING,)),
     Mutation("EOS dropped from the mask", "alignrun/rollout.py",
              "after_eos = (torch.cumsum(is_eos, dim=1) - is_eos) > 0", "after_eos = torch.cumsum(is_eos, dim=1) > 0",

@@ -138,6 +138,7 @@ def test_a_run_with_bf16_and_decoder_only_adapters_finishes(tmp_path: Path, tiny
     assert all(0 <= s <= 1 for s in shares)
     assert report["training"]["truncated_share_mean"] == pytest.approx(sum(shares) / 2)
     assert report["training"]["truncated_share_last"] == shares[-1]
+    assert report["training"]["kl_controller"]["rule"] == "fixed beta = 0.01 (no kl.target)"
 
 
 def _rss_file_mb() -> float:
