@@ -273,6 +273,8 @@ def load_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimiz
                     controller: ppo.KLController, process: int = 0, processes: int = 1) -> int:
     load_adapter_into(policy, folder / "adapter")
     state = torch.load(folder / "trainer_state.pt", weights_only=True)
+    if "rng" not in state:  # written before every process's RNG was kept: one process's, under three keys
+        state["rng"] = [{key: state[f"rng_{key}"] for key in ("torch", "python", "numpy")}]
     if len(state["rng"]) != processes:
         raise UserError(f"{folder}: the checkpoint was written by {len(state['rng'])} process(es); resume it with "
                         f"the same number (now {processes})")
@@ -503,7 +505,7 @@ def _evaluate_once(path: Path, policy: Policy, prompts: list[str], scorer: Any, 
     share = -(-len(prompts) // processes)
     mine = prompts[rank * share:(rank + 1) * share]
     result = None
-    if mine:
+    if mine or processes == 1:
         with torch.random.fork_rng(devices=[]):
             # the same sampling noise before and after: a paired design; each process its own stream
             torch.manual_seed(cfg.run.seed + 7919 + 1_000_003 * rank)

@@ -388,3 +388,30 @@ def test_train_step_wiring(tmp_path: Path, tiny_models, monkeypatch) -> None:
     before_loss = real_loss(logp_old, logp_old, advantages, ro.response_mask, 0.2)[0]
     after_loss = real_loss(after, logp_old, advantages, ro.response_mask, 0.2)[0]
     assert float(after_loss) < float(before_loss) - 1e-4
+
+
+def test_checkpoint_keeps_every_process_rng_and_reads_the_older_single_rng_form(tmp_path: Path, tiny_models) -> None:
+    # common practice: a resumed run draws the random numbers the uninterrupted one would have drawn
+    from alignrun import ppo
+    from alignrun.trainer import load_checkpoint, rng_state, save_checkpoint
+
+    policy = build_policy(BaseSection(model=str(tiny_models["t5"])), LoraSection(rank=4), ReferenceSection(), CPU)
+    optimizer = torch.optim.AdamW([p for p in policy.net.parameters() if p.requires_grad])
+    controller = ppo.KLController(beta=0.1)
+    torch.manual_seed(5)
+    expected = torch.get_rng_state()
+    other = {**rng_state(), "torch": torch.manual_seed(6).get_state()}
+    torch.manual_seed(5)
+    save_checkpoint(tmp_path / "ckpt", policy, optimizer, controller, 3, [rng_state(), other])
+    torch.manual_seed(0)
+    with pytest.raises(UserError, match="written by 2 process"):
+        load_checkpoint(tmp_path / "ckpt", policy, optimizer, controller)
+    assert load_checkpoint(tmp_path / "ckpt", policy, optimizer, controller, process=1, processes=2) == 3
+    assert torch.equal(torch.get_rng_state(), other["torch"])
+    state = torch.load(tmp_path / "ckpt" / "trainer_state.pt", weights_only=True)  # the older form: three keys
+    older = {k: v for k, v in state.items() if k != "rng"}
+    older.update({f"rng_{key}": value for key, value in state["rng"][0].items()})
+    torch.save(older, tmp_path / "ckpt" / "trainer_state.pt")
+    torch.manual_seed(0)
+    assert load_checkpoint(tmp_path / "ckpt", policy, optimizer, controller) == 3
+    assert torch.equal(torch.get_rng_state(), expected)
