@@ -49,7 +49,9 @@ class LoraSection(Section):
 
     rank: int = Field(8, ge=1, le=1024)
     alpha: float = Field(16.0, gt=0)
-    dropout: float = Field(0.0, ge=0, lt=1)
+    dropout: float = Field(0.0, ge=0, lt=1, description="recorded in the saved adapter's config for later training; "
+                           "alignrun itself keeps every dropout off, LoRA's included, so that rollouts and updates see "
+                           "the same policy (STACK-NOTES)")
     targets: str | list[str] = Field("auto", description='"auto" (query/value projections), "all-linear", or module names')
     scope: Literal["decoder", "encoder-decoder"] = Field(
         "decoder", description="which stacks get adapters; with 'decoder' the frozen encoder runs once per step and its "
@@ -112,7 +114,11 @@ class KLSection(Section):
 
     coef: float = Field(0.1, ge=0, description="beta; the starting value when target is set")
     target: float | None = Field(None, gt=0, description="set to adapt beta towards this KL per sample (Ziegler et al. 2019)")
-    gain: float = Field(0.1, gt=0, le=1, description="K_beta of the adaptive controller")
+    gain: float = Field(0.1, gt=0, le=1, description="K_beta of the adaptive controller per step, when kl.horizon = 0")
+    # 160 replies = the gain 0.1 per step at the default 16 prompts per step, whatever prompts_per_step is; the
+    # paper's 10,000 left beta where it started over a quick demo run (0.0996 from 0.1; see README)
+    horizon: int = Field(160, ge=0, description="H in replies: beta <- beta (1 + e n / H), n = replies per step, so "
+                         "beta's speed per reply does not depend on ppo.prompts_per_step; 0 uses kl.gain per step")
 
 
 class PPOSection(Section):
@@ -124,12 +130,15 @@ class PPOSection(Section):
     epochs: int = Field(4, ge=1, le=100)
     learning_rate: float = Field(1e-4, gt=0, le=1)
     clip_epsilon: float = Field(0.2, gt=0, lt=1)
-    value_clip: float = Field(0.2, gt=0)
+    value_clip: float = Field(0.2, ge=0, description="largest change of a value estimate per rollout, in standard "
+                              "deviations of the step's returns (Huang et al. 2022); 0 turns value clipping off")
     value_weight: float = Field(0.5, ge=0)
     gamma: float = Field(1.0, ge=0, le=1)
     gae_lambda: float = Field(0.95, ge=0, le=1)
     max_grad_norm: float = Field(1.0, gt=0)
     whiten_advantages: bool = True
+    weight_decay: float = Field(0.0, ge=0, description="AdamW's decoupled weight decay on adapters and value head; "
+                                "above 0 it pulls the adapters towards zero, i.e. towards the base model")
 
     @model_validator(mode="after")
     def _minibatch_divides(self) -> PPOSection:

@@ -20,7 +20,13 @@ import torch
 from peft import LoraConfig, PeftModel, TaskType, get_peft_model, set_peft_model_state_dict
 from safetensors.torch import load_file, save_file
 from torch import nn
-from transformers import AutoConfig, AutoModelForSeq2SeqLM, AutoTokenizer, PreTrainedTokenizerBase
+from transformers import (
+    AutoConfig,
+    AutoModelForSeq2SeqLM,
+    AutoTokenizer,
+    GenerationConfig,
+    PreTrainedTokenizerBase,
+)
 from transformers.modeling_outputs import BaseModelOutput
 from trl.trainer.utils import disable_dropout_in_model
 
@@ -173,9 +179,22 @@ class PolicyWithValue(nn.Module):
 
     def forward(self, input_ids: torch.Tensor, attention_mask: torch.Tensor, decoder_input_ids: torch.Tensor,
                 encoder_hidden: torch.Tensor | None = None) -> tuple[torch.Tensor, torch.Tensor]:
-        out = self.lm(input_ids=input_ids, attention_mask=attention_mask, decoder_input_ids=decoder_input_ids,
-                      encoder_outputs=encoder_outputs(encoder_hidden), output_hidden_states=True, use_cache=False)
-        return out.logits, self.value_head(out.decoder_hidden_states[-1])
+        with decoder_states(self.lm) as states:
+            logits = self.lm(input_ids=input_ids, attention_mask=attention_mask, decoder_input_ids=decoder_input_ids,
+                             encoder_outputs=encoder_outputs(encoder_hidden), use_cache=False).logits
+        return logits, self.value_head(states[0])
+
+
+@contextmanager
+def decoder_states(lm: nn.Module) -> Iterator[list[torch.Tensor]]:
+    """The decoder stack's last hidden state from each of its calls inside the block (one per generation step):
+    the value head's input, without keeping every layer's states as output_hidden_states would."""
+    kept: list[torch.Tensor] = []
+    hook = lm.get_decoder().register_forward_hook(lambda module, args, out: kept.append(out[0]))  # type: ignore[operator]
+    try:
+        yield kept
+    finally:
+        hook.remove()
 
 
 def encoder_outputs(hidden: torch.Tensor | None) -> BaseModelOutput | None:
@@ -274,9 +293,22 @@ def _libc() -> ctypes.CDLL:
     return libc
 
 
+def neutral_generation_settings(model: nn.Module, tokenizer: PreTrainedTokenizerBase) -> GenerationConfig:
+    """Generation settings with the special tokens only. generate() fills every setting a call leaves unset from
+    the model's saved generation_config, and saved settings such as forced_eos_token_id, no_repeat_ngram_size,
+    min_length, repetition_penalty or suppress_tokens reshape the distribution tokens are drawn from, while PPO
+    stores the raw log-probs: samples would no longer come from the policy whose log-probs are kept."""
+    config: Any = model.config
+    saved: Any = model.generation_config
+    start = saved.decoder_start_token_id if saved.decoder_start_token_id is not None else config.decoder_start_token_id
+    return GenerationConfig(decoder_start_token_id=start, bos_token_id=saved.bos_token_id,
+                            eos_token_id=tokenizer.eos_token_id, pad_token_id=tokenizer.pad_token_id)
+
+
 def build_policy(base: BaseSection, lora: LoraSection, reference: ReferenceSection,
                  device: torch.device) -> Policy:
     model, tokenizer = load_base(base, device)
+    model.generation_config = neutral_generation_settings(model, tokenizer)  # type: ignore[assignment]
     disable_dropout_in_model(model)  # STACK-NOTES: dropout makes policy and reference differ at step 0
     ref_copy = None
     if reference.mode == "copy":

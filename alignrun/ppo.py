@@ -8,6 +8,7 @@ zero (an empty generation) contributes nothing and never produces NaN.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import asdict, dataclass
 
 import torch
@@ -35,9 +36,22 @@ def masked_var(x: Tensor, mask: Tensor, unbiased: bool = True) -> Tensor:
     return var
 
 
-def whiten(x: Tensor, mask: Tensor, shift_mean: bool = True) -> Tensor:
-    """Normalise to mean 0 / variance 1 over the masked entries of the whole batch; 0 on padding."""
-    mean, var = masked_mean(x, mask), masked_var(x, mask)
+def moments(x: Tensor, mask: Tensor, total: Callable[[Tensor], Tensor] = lambda t: t) -> tuple[Tensor, Tensor]:
+    """Mean and unbiased variance of the masked entries; `total` sums a tensor over processes, so that with several
+    processes they are those of the whole batch. Variance 0 when there are fewer than 2 entries."""
+    keep = mask.bool()
+    count = total(keep.sum().to(x.dtype))
+    mean = total(torch.where(keep, x, torch.zeros_like(x)).sum()) / count.clamp(min=1)
+    squares = total(torch.where(keep, (x - mean) ** 2, torch.zeros_like(x)).sum())
+    # Bessel's correction: divide by n - 1 (common practice)
+    return mean, torch.where(count > 1, squares / (count - 1).clamp(min=1), torch.zeros_like(squares))
+
+
+def whiten(x: Tensor, mask: Tensor, shift_mean: bool = True,
+           total: Callable[[Tensor], Tensor] = lambda t: t) -> Tensor:
+    """Normalise to mean 0 / variance 1 over the masked entries of the whole batch (`total`: see moments); 0 on
+    padding."""
+    mean, var = moments(x, mask, total)
     whitened = (x - mean) * torch.rsqrt(var + 1e-8)  # per-batch advantage whitening (Huang et al. 2022)
     if not shift_mean:
         whitened = whitened + mean
@@ -127,11 +141,13 @@ def policy_loss(
 
 
 def value_loss(
-    values_new: Tensor, values_old: Tensor, returns: Tensor, mask: Tensor, clip: float
+    values_new: Tensor, values_old: Tensor, returns: Tensor, mask: Tensor, clip: float | None
 ) -> tuple[Tensor, Tensor]:
-    """Clipped value loss and the share of real tokens where the clipped term is the larger one."""
-    values_clipped = values_old + torch.clamp(values_new - values_old, -clip, clip)
+    """Value loss, clipped when `clip` is set, and the share of real tokens where the clipped term is the larger one."""
     unclipped = (values_new - returns) ** 2
+    if clip is None:
+        return 0.5 * masked_mean(unclipped, mask), torch.zeros((), dtype=values_new.dtype)  # 0.5 E[(V - R)^2]
+    values_clipped = values_old + torch.clamp(values_new - values_old, -clip, clip)
     clipped = (values_clipped - returns) ** 2
     # 0.5 * E[max((V - R)^2, (V_clip - R)^2)] (Huang et al. 2022, value loss clipping)
     loss = 0.5 * masked_mean(torch.maximum(unclipped, clipped), mask)
@@ -143,26 +159,43 @@ def value_loss(
 
 @dataclass
 class KLController:
-    """The KL coefficient beta: fixed when `target` is None, otherwise adapted towards `target`."""
+    """The KL coefficient beta: fixed when `target` is None, otherwise adapted towards `target` once per step.
+
+    With `horizon` = 0 the step's error moves beta by the gain K_beta (Ziegler et al. 2019, §2.2), so the speed per
+    reply depends on how many replies a step holds; with `horizon` = H > 0 it moves by n / H for a step of n replies
+    (the paper's released code, from memory), the same speed per reply whatever the step size."""
 
     beta: float
     target: float | None = None
     gain: float = 0.1
+    horizon: int = 0
 
-    def update(self, observed_kl: float) -> float:
-        """Adapt beta to the observed KL per sample (summed over its tokens) and return the new beta."""
+    def update(self, observed_kl: float, episodes: int = 1) -> float:
+        """Adapt beta to the observed KL per reply (summed over its tokens) after a step of `episodes` replies."""
         if self.target is None:
             return self.beta
         if not math.isfinite(observed_kl):
             raise ValueError(f"observed KL must be a finite number, got {observed_kl}")
         # e = clip(KL / target - 1, -0.2, 0.2) (Ziegler et al. 2019, §2.2)
         error = min(max(observed_kl / self.target - 1.0, -0.2), 0.2)
-        self.beta *= 1.0 + self.gain * error  # beta <- beta (1 + K_beta e) (Ziegler et al. 2019, §2.2)
+        if self.horizon:
+            self.beta *= 1.0 + error * episodes / self.horizon  # beta <- beta (1 + e n / H) (Ziegler et al. 2019, code)
+        else:
+            self.beta *= 1.0 + self.gain * error  # beta <- beta (1 + K_beta e) (Ziegler et al. 2019, §2.2)
         return self.beta
+
+    def rule(self) -> str:
+        """The update rule in effect, in words (for the report)."""
+        if self.target is None:
+            return f"fixed beta = {self.beta:g} (no kl.target)"
+        error = f"e = clip(KL / {self.target:g} - 1, -0.2, 0.2) with KL the mean over replies of the summed k1"
+        if self.horizon:
+            return f"beta <- beta * (1 + e * n / {self.horizon}), n = replies in the step; {error} (Ziegler et al. 2019)"
+        return f"beta <- beta * (1 + {self.gain:g} * e) once per step; {error} (Ziegler et al. 2019)"
 
     def state_dict(self) -> dict:
         return asdict(self)
 
     def load_state_dict(self, d: dict) -> None:
-        self.beta, self.gain = float(d["beta"]), float(d["gain"])
+        self.beta, self.gain, self.horizon = float(d["beta"]), float(d["gain"]), int(d.get("horizon", 0))
         self.target = None if d["target"] is None else float(d["target"])

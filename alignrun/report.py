@@ -75,6 +75,7 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
                  started: float, judge_polarity: Any = None) -> dict[str, Any]:
     """judge_polarity: the judge's own preflight result (with .verdict), or None when it was not checked."""
     from alignrun import evaluation
+    from alignrun.ppo import KLController
 
     eos_id = policy.tokenizer.eos_token_id
     sb, sa = evaluation.summarise(before, cfg, eos_id), evaluation.summarise(after, cfg, eos_id)
@@ -107,7 +108,16 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
         "training": {"final_kl": last.get("kl_mean"), "final_beta": last.get("beta"),
                      "reward_first": history[0]["reward_mean"] if history else None,
                      "reward_last": last.get("reward_mean"), "kl_target": cfg.kl.target,
-                     "trained_prompts": len(split.train), "skipped_rows": len(split.skipped)},
+                     "trained_prompts": len(split.train), "skipped_rows": len(split.skipped),
+                     # replies cut at generation.max_new_tokens, scored and treated as ended (rollout.rollout)
+                     "truncated_share_mean": (sum(r.get("truncated_share", 0.0) for r in history) / len(history)
+                                              if history else None),
+                     "truncated_share_last": last.get("truncated_share"),
+                     "kl_controller": {"rule": KLController(beta=cfg.kl.coef, target=cfg.kl.target, gain=cfg.kl.gain,
+                                                            horizon=cfg.kl.horizon).rule(),
+                                       "initial_beta": cfg.kl.coef, "target": cfg.kl.target,
+                                       "gain": None if cfg.kl.horizon else cfg.kl.gain,
+                                       "horizon": cfg.kl.horizon or None}},
         "data": {key: getattr(split, "source", {}).get(key) for key in ("heldout_overlap", "warnings", "prompts", "heldout")},
         "evaluation": {
             "prompts": len(before.prompts), "samples_per_prompt": cfg.evaluation.samples_per_prompt,

@@ -11,10 +11,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import torch
-from transformers import PreTrainedTokenizerBase
+from transformers import GenerationConfig, PreTrainedTokenizerBase
 from trl.trainer.utils import selective_log_softmax
 
-from alignrun.models import Policy, encoder_outputs
+from alignrun.errors import UserError
+from alignrun.models import Policy, decoder_states, encoder_outputs
 
 
 @dataclass
@@ -53,8 +54,8 @@ def response_mask(response_ids: torch.Tensor, eos_id: int) -> torch.Tensor:
 
 
 def decoder_start(policy: Policy) -> int:
-    start = policy.lm.config.decoder_start_token_id
-    return int(start if start is not None else policy.tokenizer.pad_token_id)
+    """The decoder start token (models.neutral_generation_settings kept it from the saved settings or config)."""
+    return int(policy.lm.generation_config.decoder_start_token_id)
 
 
 @torch.no_grad()
@@ -66,26 +67,41 @@ def frozen_encoding(policy: Policy, prompt_ids: torch.Tensor, prompt_mask: torch
     return policy.lm.get_encoder()(input_ids=prompt_ids, attention_mask=prompt_mask).last_hidden_state
 
 
+def generation_settings(policy: Policy, max_new_tokens: int, do_sample: bool) -> GenerationConfig:
+    """The whole generation configuration of training and evaluation: temperature 1, no top-k/top-p, no
+    processors (the model's saved settings were replaced by models.neutral_generation_settings), greedy when not
+    sampling. Raw and processed scores are both returned so `sample` can check that they agree."""
+    sampling = {"do_sample": True, "temperature": 1.0, "top_k": 0, "top_p": 1.0} if do_sample else {"do_sample": False}
+    return GenerationConfig(
+        **sampling, num_beams=1, max_new_tokens=max_new_tokens, eos_token_id=policy.tokenizer.eos_token_id,
+        pad_token_id=policy.tokenizer.pad_token_id, decoder_start_token_id=decoder_start(policy),
+        output_logits=True, output_scores=True, return_dict_in_generate=True,
+    )
+
+
 @torch.no_grad()
 def sample(policy: Policy, prompt_ids: torch.Tensor, prompt_mask: torch.Tensor, max_new_tokens: int,
            do_sample: bool = True, with_values: bool = True, encoder_hidden: torch.Tensor | None = None,
            ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor | None]:
-    """Sample at temperature 1 with no top-k/top-p, so the stored log-probs are the policy's own."""
-    sampling = {"do_sample": True, "temperature": 1.0, "top_k": 0, "top_p": 1.0} if do_sample else {"do_sample": False}
+    """Sample at temperature 1 from the raw distribution (or take its argmax), so the stored log-probs are those
+    of the distribution the tokens were drawn from (Huang et al. 2024, sampling details; from memory).
+
+    Returns (sequences [B, 1 + T] starting with the decoder start token, log-probs [B, T], values [B, T] or None).
+    Raises UserError when generation changed the distribution (a logits processor was active)."""
     reuse = {} if encoder_hidden is None else {"encoder_outputs": encoder_outputs(encoder_hidden)}
-    out = policy.lm.generate(
-        input_ids=prompt_ids, attention_mask=prompt_mask, max_new_tokens=max_new_tokens, num_beams=1, **sampling,
-        **reuse,
-        output_logits=True, output_hidden_states=with_values, return_dict_in_generate=True,
-        pad_token_id=policy.tokenizer.pad_token_id, eos_token_id=policy.tokenizer.eos_token_id,
-    )
+    with decoder_states(policy.lm) as states:
+        out = policy.lm.generate(input_ids=prompt_ids, attention_mask=prompt_mask,
+                                 generation_config=generation_settings(policy, max_new_tokens, do_sample), **reuse)
+    if not all(torch.equal(raw, used) for raw, used in zip(out.logits, out.scores, strict=True)):
+        raise UserError(f"base.model: generating with {policy.lm.config.name_or_path} changed the model's "
+                        "distribution (a logits processor was active), so the stored log-probs would not be those of "
+                        "the sampled tokens; alignrun needs a model whose generate() honours its generation_config")
     sequences = out.sequences  # [B, 1 + T], starting with the decoder start token
     logits = torch.stack(out.logits, dim=1).float()  # [B, T, V] raw logits at each sampled position
-    response = sequences[:, 1:]
-    logp = selective_log_softmax(logits, response)
+    logp = selective_log_softmax(logits, sequences[:, 1:])
     values = None
     if with_values:
-        hidden = torch.cat([step[-1] for step in out.decoder_hidden_states], dim=1)  # [B, T, H] last layer
+        hidden = torch.cat(states[: logits.shape[1]], dim=1)  # [B, T, H] the decoder's last layer, step by step
         values = policy.net.value_head(hidden).float()
     return sequences, logp, values
 
@@ -102,6 +118,13 @@ def reference_logprobs(policy: Policy, prompt_ids: torch.Tensor, prompt_mask: to
 
 def rollout(policy: Policy, prompts: list[str], max_prompt_tokens: int, max_new_tokens: int,
             device: torch.device) -> Rollout:
+    """Sample one reply per prompt with its bookkeeping.
+
+    A reply that reaches `max_new_tokens` without EOS is kept as it stands: it is scored like any other and
+    treated as ended, its last token getting the score and the value after it taken as 0 (ppo.gae), rather than
+    bootstrapped from the value of a continuation that was never sampled. The trainer logs the share of such
+    replies (metrics.jsonl `truncated_share`); a high share means max_new_tokens cuts replies short.
+    """
     tok = policy.tokenizer
     prompt_ids, prompt_mask = encode_prompts(tok, prompts, max_prompt_tokens, device)
     hidden = frozen_encoding(policy, prompt_ids, prompt_mask)

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import contextlib
+import copy
+import dataclasses
 import json
 import platform
 import random
@@ -82,32 +84,65 @@ def step_prompts(train: list[str], step: int, per_step: int, seed: int) -> list[
     return out
 
 
+def minibatch_order(n: int, cfg: Experiment, step: int, processes: int) -> list[list[torch.Tensor]]:
+    """Row indices of every minibatch of every epoch of this step (a seeded shuffle per epoch)."""
+    mb = max(1, cfg.ppo.minibatch // processes)
+    gen = torch.Generator().manual_seed(cfg.run.seed * 100_003 + step)
+    return [list(torch.randperm(n, generator=gen).split(mb)) for _ in range(cfg.ppo.epochs)]
+
+
+def policy_forward(net: torch.nn.Module, part: Rollout, cfg: Experiment,
+                   device: torch.device) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+    """The update's forward: (fp32 logits [b, T, V], log-probs of the sampled tokens [b, T], values [b, T])."""
+    with autocast(cfg.base.precision, device):
+        logits, values = net(part.prompt_ids, part.prompt_mask, part.decoder_input, part.encoder_hidden)
+    logits = logits.float()
+    return logits, selective_log_softmax(logits, part.response_ids), values.float()
+
+
+@torch.no_grad()
+def update_forward_bookkeeping(net: torch.nn.Module, ro: Rollout, first_epoch: list[torch.Tensor],
+                               cfg: Experiment, device: torch.device) -> Rollout:
+    """Old log-probs and values from the update's own forward, minibatch by minibatch as the first epoch will run
+    it. Under bf16 the generation pass (KV cache, one position at a time) rounds differently from that forward,
+    by up to 1.6e-2 in log-ratio: the first minibatch would start off-ratio and step 0 would show a spurious KL."""
+    logp, values = torch.zeros_like(ro.logp), torch.zeros_like(ro.values)
+    for idx in first_epoch:
+        part = ro.select(idx)
+        _, logp[idx], values[idx] = policy_forward(net, part, cfg, device)
+    return dataclasses.replace(ro, logp=logp * ro.response_mask, values=values * ro.response_mask)
+
+
 def ppo_update(net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerator: Accelerator, ro: Rollout,
                advantages: torch.Tensor, returns: torch.Tensor, cfg: Experiment, step: int,
-               device: torch.device) -> dict[str, float]:
-    """Several epochs of clipped policy and value losses over minibatches (Schulman et al. 2017)."""
+               device: torch.device, order: list[list[torch.Tensor]] | None = None) -> dict[str, float]:
+    """Several epochs of clipped policy and value losses over minibatches (Schulman et al. 2017), in the order
+    `order` (default: minibatch_order's)."""
     p = cfg.ppo
-    n = ro.response_ids.shape[0]
-    mb = max(1, p.minibatch // accelerator.num_processes)
+    order = order or minibatch_order(ro.response_ids.shape[0], cfg, step, accelerator.num_processes)
+    total = _sum_over_processes(accelerator)
+    # value clipping in units of this step's return spread, so it means the same whatever the reward's scale
+    # (Huang et al. 2022 clip values of normalised returns at 0.2; from memory)
+    value_clip = p.value_clip * float(ppo.moments(returns, ro.response_mask, total)[1].sqrt()) if p.value_clip else None
     totals: dict[str, list[float]] = {"policy_loss": [], "value_loss": [], "clip_frac": [], "value_clip_frac": [],
                                       "approx_kl": [], "entropy": []}
-    gen = torch.Generator().manual_seed(cfg.run.seed * 100_003 + step)
-    for _ in range(p.epochs):
-        for idx in torch.randperm(n, generator=gen).split(mb):
+    for epoch in order:
+        for idx in epoch:
             part = ro.select(idx)
-            with autocast(cfg.base.precision, device):
-                logits, values = net(part.prompt_ids, part.prompt_mask, part.decoder_input, part.encoder_hidden)
-            logits = logits.float()
-            logp = selective_log_softmax(logits, part.response_ids)
+            logits, logp, values = policy_forward(net, part, cfg, device)
             mask = part.response_mask
             pl, clip_frac, approx_kl = ppo.policy_loss(logp, part.logp, advantages[idx], mask, p.clip_epsilon)
-            vl, vclip = ppo.value_loss(values.float(), part.values, returns[idx], mask, p.value_clip)
+            vl, vclip = ppo.value_loss(values, part.values, returns[idx], mask, value_clip)
             loss = pl + p.value_weight * vl
-            if not torch.isfinite(loss):
-                raise NonFinite(f"loss is {loss.item()} at step {step + 1}")
+            # the losses are means over this process's tokens and the gradients are averaged over processes: weigh
+            # by this process's share of the global minibatch's tokens, so the update is that of one process (1.0)
+            tokens = mask.sum()
+            share = tokens * accelerator.num_processes / total(tokens).clamp(min=1)
             optimizer.zero_grad(set_to_none=True)
-            accelerator.backward(loss)
-            accelerator.clip_grad_norm_(net.parameters(), p.max_grad_norm)
+            accelerator.backward(loss * share)
+            grad_norm = accelerator.clip_grad_norm_(net.parameters(), p.max_grad_norm)
+            if not (torch.isfinite(loss) and torch.isfinite(torch.as_tensor(grad_norm))):
+                raise NonFinite(f"loss is {loss.item()} (gradient norm {float(grad_norm)}) at step {step + 1}")
             optimizer.step()
             with torch.no_grad():
                 ent = ppo.masked_mean(entropy_from_logits(logits), mask)
@@ -125,37 +160,59 @@ def _gather_mean(accelerator: Accelerator, x: torch.Tensor) -> float:
     return float(accelerator.gather(x.detach().reshape(-1)).mean())
 
 
+def _sum_over_processes(accelerator: Accelerator) -> Any:
+    """A function summing a tensor over all processes (the tensor itself with one process)."""
+    if accelerator.num_processes == 1:
+        return lambda t: t
+    return lambda t: accelerator.reduce(t.clone(), reduction="sum")
+
+
+def _any_process(accelerator: Accelerator, flag: bool) -> bool:
+    """True on every process when `flag` is true on any (so that all take the same branch)."""
+    if accelerator.num_processes == 1:
+        return flag
+    return bool(accelerator.gather(torch.tensor([float(flag)], device=accelerator.device)).max())
+
+
 def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerator: Accelerator,
                scorer: Any, controller: ppo.KLController, prompts: list[str], cfg: Experiment, step: int,
                device: torch.device) -> dict[str, float]:
     t0 = time.perf_counter()
     with autocast(cfg.base.precision, device):
         ro = rollout(policy, prompts, cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens, device)
+    order = minibatch_order(len(prompts), cfg, step, accelerator.num_processes)
+    if cfg.base.precision == "bf16":
+        ro = update_forward_bookkeeping(net, ro, order[0], cfg, device)
     t1 = time.perf_counter()
+    problem = ""
     try:
         scores = scorer.score(ro.texts)
+        reward = torch.tensor(reward_from_scores(scores, cfg.reward), dtype=torch.float32, device=device)
+        if not torch.isfinite(reward).all():
+            problem = "returned NaN/inf"
     except UserError as exc:  # e.g. a callable that returned NaN: same guard as a NaN reward
-        raise NonFinite(f"the reward backend failed at step {step + 1}: {exc}") from None
-    reward = torch.tensor(reward_from_scores(scores, cfg.reward), dtype=torch.float32, device=device)
-    if not torch.isfinite(reward).all():
-        raise NonFinite(f"the reward backend returned NaN/inf at step {step + 1}")
+        problem = f"failed: {exc}"
+    if _any_process(accelerator, bool(problem)):  # every process stops at the same point
+        raise NonFinite(f"the reward backend {problem or 'failed in another process'} at step {step + 1}")
     t2 = time.perf_counter()
     rewards, kl = ppo.penalised_rewards(reward, ro.logp, ro.ref_logp, ro.response_mask, controller.beta)
     advantages, returns = ppo.gae(rewards, ro.values, ro.response_mask, cfg.ppo.gamma, cfg.ppo.gae_lambda)
     if cfg.ppo.whiten_advantages:
-        advantages = ppo.whiten(advantages, ro.response_mask)
-    stats = ppo_update(net, optimizer, accelerator, ro, advantages, returns, cfg, step, device)
+        advantages = ppo.whiten(advantages, ro.response_mask, total=_sum_over_processes(accelerator))
+    stats = ppo_update(net, optimizer, accelerator, ro, advantages, returns, cfg, step, device, order)
     t3 = time.perf_counter()
     seq_kl = _gather_mean(accelerator, kl.sum(dim=1))
     beta = controller.beta
-    controller.update(seq_kl)
+    controller.update(seq_kl, episodes=len(prompts) * accelerator.num_processes)
     tokens = float(accelerator.gather(ro.response_mask.sum().reshape(1)).sum())
+    # a reply with no EOS was cut at generation.max_new_tokens; it is scored and treated as ended (rollout.rollout)
+    truncated = _gather_mean(accelerator, (ro.response_ids != policy.tokenizer.eos_token_id).all(dim=1).float())
     all_reward = accelerator.gather(reward)
     return {
         "step": step + 1, "reward_mean": float(all_reward.mean()), "reward_std": float(all_reward.std()),
         "harm_mean": _gather_mean(accelerator, torch.as_tensor(scores.harm, dtype=torch.float32)),
         "kl_mean": seq_kl, "beta": beta, **stats,
-        "length_mean": tokens / (len(prompts) * accelerator.num_processes),
+        "length_mean": tokens / (len(prompts) * accelerator.num_processes), "truncated_share": truncated,
         "rollout_s": t1 - t0, "reward_s": t2 - t1, "update_s": t3 - t2, "step_s": t3 - t0,
         "tokens_per_s": tokens / max(t3 - t0, 1e-9),
     }
@@ -163,33 +220,83 @@ def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Opti
 
 # ---------------------------------------------------------------- checkpoints
 
+def rng_state() -> dict[str, Any]:
+    """This process's random number generators (torch CPU, Python, numpy) in a form torch.save keeps."""
+    np_state: tuple[Any, ...] = np.random.get_state(legacy=True)  # type: ignore[assignment]
+    return {"torch": torch.get_rng_state(), "python": random.getstate(),
+            "numpy": [np_state[0], torch.from_numpy(np_state[1].astype(np.int64)), *np_state[2:]]}
+
+
+def set_rng_state(state: dict[str, Any]) -> None:
+    torch.set_rng_state(state["torch"])
+    py = state["python"]
+    random.setstate((py[0], tuple(py[1]), py[2]))
+    npst = state["numpy"]
+    np.random.set_state((npst[0], npst[1].numpy().astype(np.uint32), *npst[2:]))
+
+
+def snapshot(net: torch.nn.Module, optimizer: torch.optim.Optimizer, controller: ppo.KLController) -> dict[str, Any]:
+    """Everything a step changes: trainable weights (adapter, value head), optimiser state with its step counters,
+    the KL controller and the random generators; `restore` puts it back after a NaN/inf mid-step."""
+    return {"weights": {n: p.detach().clone() for n, p in net.named_parameters() if p.requires_grad},
+            "optimizer": copy.deepcopy(optimizer.state_dict()), "kl_controller": controller.state_dict(),
+            "rng": rng_state()}
+
+
+def restore(state: dict[str, Any], net: torch.nn.Module, optimizer: torch.optim.Optimizer,
+            controller: ppo.KLController) -> None:
+    with torch.no_grad():
+        for name, p in net.named_parameters():
+            if p.requires_grad:
+                p.copy_(state["weights"][name])
+                p.grad = None
+    optimizer.load_state_dict(state["optimizer"])
+    controller.load_state_dict(state["kl_controller"])
+    set_rng_state(state["rng"])
+
+
+def all_rng_states(accelerator: Accelerator) -> list[dict[str, Any]]:
+    """Every process's random generators, in process order (a collective call: every process must make it)."""
+    if accelerator.num_processes == 1:
+        return [rng_state()]
+    states: list[Any] = [None] * accelerator.num_processes
+    torch.distributed.all_gather_object(states, rng_state())
+    return states
+
+
 def save_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimizer,
-                    controller: ppo.KLController, step: int) -> None:
-    """Adapter, value head, optimiser, KL controller, RNG states and data position (= step), atomically."""
+                    controller: ppo.KLController, step: int, rng: list[dict[str, Any]] | None = None) -> None:
+    """Adapter, value head, optimiser, KL controller, every process's RNG states (`rng`, default this process's)
+    and data position (= step), atomically."""
     tmp = staging_folder(folder)
     save_adapter(policy, tmp / "adapter")
-    np_state: tuple[Any, ...] = np.random.get_state(legacy=True)  # type: ignore[assignment]
-    torch.save({
-        "step": step, "optimizer": optimizer.state_dict(), "kl_controller": controller.state_dict(),
-        "rng_torch": torch.get_rng_state(), "rng_python": random.getstate(),
-        "rng_numpy": [np_state[0], torch.from_numpy(np_state[1].astype(np.int64)), *np_state[2:]],
-    }, tmp / "trainer_state.pt")
+    torch.save({"step": step, "optimizer": optimizer.state_dict(), "kl_controller": controller.state_dict(),
+                "rng": rng or [rng_state()]}, tmp / "trainer_state.pt")
     write_json_atomic(tmp / "checkpoint.json", {"step": step})
     replace_folder(tmp, folder)
 
 
 def load_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimizer,
-                    controller: ppo.KLController) -> int:
+                    controller: ppo.KLController, process: int = 0, processes: int = 1) -> int:
     load_adapter_into(policy, folder / "adapter")
     state = torch.load(folder / "trainer_state.pt", weights_only=True)
+    if "rng" not in state:  # written before every process's RNG was kept: one process's, under three keys
+        state["rng"] = [{key: state[f"rng_{key}"] for key in ("torch", "python", "numpy")}]
+    if len(state["rng"]) != processes:
+        raise UserError(f"{folder}: the checkpoint was written by {len(state['rng'])} process(es); resume it with "
+                        f"the same number (now {processes})")
     optimizer.load_state_dict(state["optimizer"])
     controller.load_state_dict(state["kl_controller"])
-    torch.set_rng_state(state["rng_torch"])
-    py = state["rng_python"]
-    random.setstate((py[0], tuple(py[1]), py[2]))
-    npst = state["rng_numpy"]
-    np.random.set_state((npst[0], npst[1].numpy().astype(np.uint32), *npst[2:]))
+    set_rng_state(state["rng"][process])
     return int(state["step"])
+
+
+def _checkpoint(accelerator: Accelerator, folder: Path, policy: Policy, optimizer: torch.optim.Optimizer,
+                controller: ppo.KLController, step: int) -> None:
+    """save_checkpoint from the main process with every process's RNG (call it on every process)."""
+    states = all_rng_states(accelerator)
+    if accelerator.is_main_process:
+        save_checkpoint(folder, policy, optimizer, controller, step, states)
 
 
 def _truncate_metrics(path: Path, step: int) -> None:
@@ -306,24 +413,30 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
         scorer = load_scorer(cfg.reward, "reward")
         judge = load_scorer(cfg.evaluation.judge, "evaluation.judge") if cfg.evaluation.judge else None
         polarity, judge_polarity = require_polarity(scorer, cfg.reward, out, force, judge, cfg.evaluation.judge)
-        if cfg.ppo.prompts_per_step % accelerator.num_processes:
-            raise UserError(f"ppo.prompts_per_step ({cfg.ppo.prompts_per_step}) must divide evenly across "
-                            f"{accelerator.num_processes} processes")
+        for key in ("prompts_per_step", "minibatch"):  # global sizes: the same update whatever the process count
+            if getattr(cfg.ppo, key) % accelerator.num_processes:
+                raise UserError(f"ppo.{key} ({getattr(cfg.ppo, key)}) must divide evenly across "
+                                f"{accelerator.num_processes} processes")
         policy = build_policy(cfg.base, cfg.lora, cfg.reference, device)
+        if accelerator.process_index:  # each process samples its own replies; process 0 keeps the run's seed
+            seed_everything(cfg.run.seed + 1_000_003 * accelerator.process_index)
         if not quiet and main:
             print(f"policy: {policy.trainable_params:,} trainable of {policy.total_params:,} parameters "
                   f"({100 * policy.trainable_params / policy.total_params:.2f}%)", flush=True)
         heldout = split.heldout[: cfg.evaluation.max_prompts or None]
         stage = "before-training evaluation"
         before = _evaluate_once(out / "eval_before.jsonl", policy, heldout, scorer, judge, cfg, device, main, quiet,
-                                "before")
+                                "before", accelerator)
         optimizer = torch.optim.AdamW([p for p in policy.net.parameters() if p.requires_grad],
-                                      lr=cfg.ppo.learning_rate)
+                                      lr=cfg.ppo.learning_rate, weight_decay=cfg.ppo.weight_decay)
         net, optimizer = accelerator.prepare(policy.net, optimizer)
-        controller = ppo.KLController(beta=cfg.kl.coef, target=cfg.kl.target, gain=cfg.kl.gain)
+        controller = ppo.KLController(beta=cfg.kl.coef, target=cfg.kl.target, gain=cfg.kl.gain, horizon=cfg.kl.horizon)
         if start:
             try:
-                step = load_checkpoint(ckpt, policy, optimizer, controller)
+                step = load_checkpoint(ckpt, policy, optimizer, controller, accelerator.process_index,
+                                       accelerator.num_processes)
+            except UserError:
+                raise
             except Exception as exc:  # a truncated or overwritten trainer_state.pt or adapter file
                 raise UserError(f"{ckpt}: the checkpoint (trainer_state.pt, adapter/) cannot be read "
                                 f"({(str(exc).splitlines() or [type(exc).__name__])[0][:200]}); it is damaged: "
@@ -340,11 +453,13 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                 while step < cfg.ppo.steps:
                     prompts = step_prompts(split.train, step, cfg.ppo.prompts_per_step, cfg.run.seed)
                     mine = prompts[accelerator.process_index * per_proc:(accelerator.process_index + 1) * per_proc]
+                    before_step = snapshot(net, optimizer, controller)
                     try:
                         row = train_step(policy, net, optimizer, accelerator, scorer, controller, mine, cfg, step, device)
                     except NonFinite as exc:
+                        restore(before_step, net, optimizer, controller)  # minibatches before the NaN are undone
+                        _checkpoint(accelerator, ckpt, policy, optimizer, controller, step)
                         if main:
-                            save_checkpoint(ckpt, policy, optimizer, controller, step)
                             save_adapter(policy, out / "adapter")
                         raise UserError(f"stopped: {exc}. The last good adapter and checkpoint (after step {step}) "
                                         f"are kept in {out}; lower ppo.learning_rate or check the reward backend") from None
@@ -355,23 +470,22 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                         log.write(json.dumps(row) + "\n")
                         log.flush()
                         folder.set_status("running", step=step)
-                        if cfg.run.checkpoint_every and step % cfg.run.checkpoint_every == 0:
-                            save_checkpoint(ckpt, policy, optimizer, controller, step)
+                    if cfg.run.checkpoint_every and step % cfg.run.checkpoint_every == 0:
+                        _checkpoint(accelerator, ckpt, policy, optimizer, controller, step)
                     bar.update(1)
                     bar.set_postfix(reward=f"{row['reward_mean']:.3f}", kl=f"{row['kl_mean']:.3f}",
                                     beta=f"{row['beta']:.3f}")
-                    if stop.requested:
-                        if main:
-                            save_checkpoint(ckpt, policy, optimizer, controller, step)
+                    if _any_process(accelerator, stop.requested):
+                        _checkpoint(accelerator, ckpt, policy, optimizer, controller, step)
                         raise KeyboardInterrupt
         finally:
             bar.close()
+        _checkpoint(accelerator, ckpt, policy, optimizer, controller, step)
         if main:
-            save_checkpoint(ckpt, policy, optimizer, controller, step)
             save_adapter(policy, out / "adapter")
         stage = "after-training evaluation"
         after = _evaluate_once(out / "eval_after.jsonl", policy, heldout, scorer, judge, cfg, device, main, quiet,
-                               "after", fresh=True)
+                               "after", accelerator, fresh=True)
         report: dict[str, Any] = {}
         if main:
             report = build_report(cfg=cfg, before=before, after=after, history=history, policy=policy,
@@ -465,24 +579,51 @@ def _read_metrics(path: Path) -> list[dict[str, float]]:
 
 
 def _evaluate_once(path: Path, policy: Policy, prompts: list[str], scorer: Any, judge: Any, cfg: Experiment,
-                   device: torch.device, main: bool, quiet: bool, label: str,
+                   device: torch.device, main: bool, quiet: bool, label: str, accelerator: Accelerator,
                    fresh: bool = False) -> evaluation.EvalResult:
-    """Held-out evaluation, reused from disk on resume (before) so a resumed run reports the same numbers."""
+    """Held-out evaluation, reused from disk on resume (before) so a resumed run reports the same numbers. With
+    several processes each evaluates its own contiguous share of the prompts and the main process joins them."""
     if path.exists() and not fresh:
         try:
             return evaluation.read_samples(path)
         except (ValueError, KeyError, TypeError, IndexError) as exc:  # a damaged or hand-edited file
             raise UserError(f"{path}: the saved {label}-training evaluation cannot be read ({exc}); it is damaged: "
                             "delete it and resume, and the evaluation is done again") from None
-    replies = len(prompts) * (cfg.evaluation.samples_per_prompt + 1)  # k samples and one greedy reply each
-    with torch.random.fork_rng(devices=[]), console.progress(replies, f"evaluate {label}", "reply", quiet or not main) as bar:
-        torch.manual_seed(cfg.run.seed + 7919)  # same sampling noise before and after: a paired design
-        with autocast(cfg.base.precision, device):
-            result = evaluation.evaluate_policy(policy, prompts, scorer, judge, cfg, device, bar)
+    rank, processes = accelerator.process_index, accelerator.num_processes
+    share = -(-len(prompts) // processes)
+    mine = prompts[rank * share:(rank + 1) * share]
+    result = None
+    if mine or processes == 1:
+        replies = len(mine) * (cfg.evaluation.samples_per_prompt + 1)  # k samples and one greedy reply each
+        with torch.random.fork_rng(devices=[]), \
+                console.progress(replies, f"evaluate {label}", "reply", quiet or not main) as bar:
+            # the same sampling noise before and after: a paired design; each process its own stream
+            torch.manual_seed(cfg.run.seed + 7919 + 1_000_003 * rank)
+            with autocast(cfg.base.precision, device):
+                result = evaluation.evaluate_policy(policy, mine, scorer, judge, cfg, device, bar)
+    if processes > 1:
+        parts: list[Any] = [None] * processes
+        torch.distributed.all_gather_object(parts, result)
+        result = _join_results([r for r in parts if r is not None])
+    assert result is not None
     if main:
         evaluation.write_samples(path, result)
         return evaluation.read_samples(path)  # the very numbers a resumed run reads back
     return result
+
+
+def _join_results(parts: list[evaluation.EvalResult]) -> evaluation.EvalResult:
+    """Evaluation results of consecutive prompt shares as one (lists and per-prompt arrays concatenated)."""
+    joined: dict[str, Any] = {}
+    for field in dataclasses.fields(parts[0]):
+        values = [getattr(part, field.name) for part in parts]
+        if values[0] is None:
+            joined[field.name] = None
+        elif isinstance(values[0], np.ndarray):
+            joined[field.name] = np.concatenate(values)
+        else:
+            joined[field.name] = [item for value in values for item in value]
+    return type(parts[0])(**joined)
 
 
 # keys that name or pace a run without changing its numbers; every other key must match on --resume

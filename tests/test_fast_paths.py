@@ -133,6 +133,12 @@ def test_a_run_with_bf16_and_decoder_only_adapters_finishes(tmp_path: Path, tiny
     assert json.loads((tmp_path / "run" / "adapter" / "adapter_config.json").read_text())["target_modules"]
     rows = [json.loads(line) for line in (tmp_path / "run" / "metrics.jsonl").read_text().splitlines()]
     assert len(rows) == 2 and all(torch.isfinite(torch.tensor(r["policy_loss"])) for r in rows)
+    # the share of replies cut at max_new_tokens, per step and in the report (mean over steps, last step)
+    shares = [r["truncated_share"] for r in rows]
+    assert all(0 <= s <= 1 for s in shares)
+    assert report["training"]["truncated_share_mean"] == pytest.approx(sum(shares) / 2)
+    assert report["training"]["truncated_share_last"] == shares[-1]
+    assert report["training"]["kl_controller"]["rule"] == "fixed beta = 0.01 (no kl.target)"
 
 
 def _rss_file_mb() -> float:
@@ -156,3 +162,46 @@ def test_page_out_drops_a_mapped_tensors_pages_and_keeps_its_data(tmp_path: Path
     copy = anonymous.clone()
     _page_out(anonymous)  # anonymous memory: at most swapped out, never lost
     assert torch.equal(anonymous, copy)
+
+
+def test_bf16_old_logprobs_and_values_equal_the_updates_first_forward(tmp_path: Path, tiny_models,
+                                                                       monkeypatch) -> None:
+    # PPO's ratio is 1 and the value has not moved before the first optimiser step (Schulman et al. 2017): under
+    # bf16 the stored old log-probs and values must come from the same forward the update makes.
+    from accelerate import Accelerator
+    from transformers import AutoTokenizer
+
+    from alignrun import ppo, trainer
+    from alignrun.config import load_config
+    from alignrun.reward import load_scorer
+
+    # a T5 wider than the tiny one (d_model 128): here its bf16 generation pass differs from the update's forward by
+    # about 4e-3 in log-prob (LoRA alpha/r = 4), so the check below fails when the old log-probs are taken from generation
+    tok = AutoTokenizer.from_pretrained(tiny_models["tokenizer"])
+    config = T5Config(vocab_size=len(tok), d_model=128, d_kv=32, num_heads=4, d_ff=256, num_layers=2, dropout_rate=0.0,
+                      pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id,
+                      decoder_start_token_id=tok.pad_token_id)
+    torch.manual_seed(0)
+    T5ForConditionalGeneration(config).save_pretrained(tmp_path / "t5-128")
+    tok.save_pretrained(tmp_path / "t5-128")
+    cfg = load_config(_write_config(tmp_path, tmp_path / "t5-128", PROMPTS, base={"precision": "bf16"},
+                                    reward={"source": "tests.tiny_run:keyword_harm"}, lora={"alpha": 16.0},
+                                    ppo={"prompts_per_step": 8, "minibatch": 4, "epochs": 2}))
+    torch.manual_seed(0)
+    policy = build_policy(cfg.base, cfg.lora, cfg.reference, CPU)
+    _perturb_adapters(policy)
+    seen: dict[str, list] = {"policy_loss": [], "value_loss": []}
+    real_policy_loss, real_value_loss = ppo.policy_loss, ppo.value_loss
+    monkeypatch.setattr(ppo, "policy_loss", lambda *a, **k: seen["policy_loss"].append([x.detach() for x in a[:4]]) or real_policy_loss(*a, **k))
+    monkeypatch.setattr(ppo, "value_loss", lambda *a, **k: seen["value_loss"].append([x.detach() for x in a[:3]]) or real_value_loss(*a, **k))
+    accelerator = Accelerator(cpu=True)
+    optimizer = torch.optim.AdamW([p for p in policy.net.parameters() if p.requires_grad], lr=1e-3)
+    net, optimizer = accelerator.prepare(policy.net, optimizer)
+    trainer.train_step(policy, net, optimizer, accelerator, load_scorer(cfg.reward, "reward"),
+                       ppo.KLController(beta=0.05), PROMPTS[:8], cfg, 0, CPU)
+    (logp_new, logp_old, _, mask), (values_new, values_old, _) = seen["policy_loss"][0], seen["value_loss"][0]
+    real = mask.bool()
+    # the same forward on the same rows with the same weights: equal to the last bit, so the ratio is exactly 1
+    # and the value delta exactly 0 (the generation pass would not do: see above; up to 1.6e-2 has been seen)
+    assert torch.equal(logp_new[real], logp_old[real])
+    assert torch.equal(values_new[real], values_old[real])

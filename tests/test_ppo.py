@@ -280,3 +280,28 @@ def test_kl_controller_fixed_and_state_round_trip():
     assert restored.update(9.0) == pytest.approx(0.204 * 1.02)
     with pytest.raises(ValueError, match="finite"):
         adaptive.update(float("nan"))
+
+
+def test_kl_controller_horizon_form_worked_example():
+    # Ziegler et al. 2019, released code (REFERENCES.md worked example, from memory): beta <- beta (1 + e n / H);
+    # beta = 0.2, e = 0.2 (KL 9 vs target 6, clipped), n = 16, H = 10,000 -> 0.2 (1 + 0.00032) = 0.200064
+    assert KLController(beta=0.2, target=6.0, horizon=10_000).update(9.0, episodes=16) == pytest.approx(0.200064)
+    # the speed per reply does not depend on how replies are grouped into steps: 2 steps of 8 give
+    # 0.2 (1 + 0.00016)^2 = 0.2 (1.00032 + 2.56e-8), the one step of 16 to first order
+    split = KLController(beta=0.2, target=6.0, horizon=10_000)
+    split.update(9.0, episodes=8)
+    assert split.update(9.0, episodes=8) == pytest.approx(0.2 * 1.00016**2, rel=1e-12)
+    assert 0.2 * 1.00016**2 == pytest.approx(0.200064, rel=1e-7)
+    # the per-step gain form moves beta per step whatever the step size (REFERENCES.md: 0.2 -> 0.204)
+    assert KLController(beta=0.2, target=6.0, gain=0.1).update(9.0, episodes=16) == pytest.approx(0.204)
+    assert "n / 10000" in KLController(beta=0.2, target=6.0, horizon=10_000).rule()
+
+
+def test_value_loss_without_clipping_is_half_the_squared_error():
+    # Huang et al. 2022: with value clipping off the loss is 0.5 E[(V - R)^2]; same tokens as the hand example
+    values_new = torch.tensor([[1.0, 0.0, 2.0, 100.0]])
+    returns = torch.tensor([[2.0, 1.0, 0.0, 7.0]])
+    mask = torch.tensor([[1, 1, 1, 0]])
+    loss, clip_frac = value_loss(values_new, torch.zeros(1, 4), returns, mask, clip=None)
+    assert float(loss) == pytest.approx(0.5 * (1.0 + 1.0 + 4.0) / 3, rel=1e-6)
+    assert float(clip_frac) == 0.0
