@@ -144,17 +144,17 @@ def _harm_rows(ev: dict[str, Any]) -> list[list[str]]:
     return rows
 
 
-def _change_rows(change: Any) -> list[list[str]]:
+def _change_rows(ev: dict[str, Any]) -> list[list[str]]:
+    """The paired changes (harm by each classifier, and drift when the report has it) with their intervals."""
+    blocks = {**(ev.get("change") or {}), "drift (exact KL)": ev.get("drift")}
     rows = []
-    for who, c in (change or {}).items():
+    for who, c in blocks.items():
         if not isinstance(c, dict):
             continue
         rel = c.get("rel_change")
-        rel_ci = c["rel_ci"] if _interval(c.get("rel_ci")) else None
         rows.append([_esc(who.replace("_", " ")), f'{_value(c.get("diff"))} {_interval(c.get("diff_ci"))}',
-                     (MISSING if not isinstance(rel, (int, float)) else f"{100 * rel:+.0f}%")
-                     + (f' <span class="ci">[{100 * rel_ci[0]:+.0f}, {100 * rel_ci[1]:+.0f}]%</span>' if rel_ci else ""),
-                     _value(c.get("wilcoxon_p"))])
+                     MISSING if not isinstance(rel, (int, float)) else f"{100 * rel:+.0f}%",
+                     _value(c.get("p_value", c.get("wilcoxon_p")))])  # wilcoxon_p: older reports
     return rows
 
 
@@ -170,14 +170,21 @@ def harm_vs_drift_plot(ev: dict[str, Any]) -> str | None:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
+    exact = isinstance(_get(ev, "after", "guards", "kl_exact_to_reference"), (int, float))
+    key = "kl_exact_to_reference" if exact else "kl_to_reference"  # k1 only in reports written before drift
+    drift_ci = _get(ev, "drift", "diff_ci") if exact else None  # the paired interval of after - before
     points = []
     for who, colour in (("reward_classifier", "tab:blue"), ("judge", "tab:orange")):
         ends = []
         for when in ("before", "after"):
-            harm, kl = _get(ev, when, who, "mean"), _get(ev, when, "guards", "kl_to_reference")
+            harm, kl = _get(ev, when, who, "mean"), _get(ev, when, "guards", key)
             if not isinstance(harm, (int, float)) or not isinstance(kl, (int, float)):
                 break
-            ends.append((kl, harm, _get(ev, when, who, "mean_ci"), _get(ev, when, "guards", "kl_to_reference_ci")))
+            kl_ci = None
+            if when == "after" and _interval(drift_ci):
+                start = _get(ev, "before", "guards", key)
+                kl_ci = [start + drift_ci[0], start + drift_ci[1]]
+            ends.append((kl, harm, _get(ev, when, who, "mean_ci"), kl_ci))
         if len(ends) == 2:
             points.append((who, colour, ends))
     if not points:
@@ -195,7 +202,7 @@ def harm_vs_drift_plot(ev: dict[str, Any]) -> str | None:
         ax.plot([], [], color=colour, label=who.replace("_", " "))
     ax.plot([], [], "o", color="gray", label="before training")
     ax.plot([], [], "s", color="gray", label="after training")
-    ax.set_xlabel("KL to reference on held-out prompts (drift)")
+    ax.set_xlabel("drift: KL to the reference, nats per reply" + ("" if exact else " (k1)"))
     ax.set_ylabel("mean harm on held-out prompts (95% CI)")
     ax.legend(fontsize=8, loc="best")
     ax.margins(x=0.15, y=0.15)
@@ -244,7 +251,7 @@ def render_run(report: dict[str, Any], pairs: list[dict[str, Any]]) -> str:
         f'Outside judge: {_esc(ev.get("judge_scorer") or "none")}. Brackets: 95% bootstrap intervals.</p>'
         + _table(["measure", "before", "after"], _harm_rows(ev))
         + "<p>Paired change in per-prompt mean harm (after − before):</p>"
-        + _table(["classifier", "change", "relative", "Wilcoxon p"], _change_rows(ev.get("change"))))
+        + _table(["measure", "change (95% interval)", "relative", "p"], _change_rows(ev)))
     plot = harm_vs_drift_plot(ev)
     sections.append("<h2>Harm versus drift</h2>" + (_image(plot, "harm versus drift") if plot else f"<p>{MISSING}</p>"))
     sections.append("<h2>Guards (drift, fluency, diversity)</h2>"

@@ -159,15 +159,20 @@ def test_one_verdict_everywhere(tmp_path: Path, capsys: pytest.CaptureFixture) -
         assert expected in table.splitlines()[1]
 
 
+def _judge_check(verdict: str) -> SimpleNamespace:
+    """The judge's preflight result as build_report reads it (preflight.PolarityReport's fields)."""
+    return SimpleNamespace(verdict=verdict, auroc=0.9, auroc_interval=(0.85, 0.95), gap=0.5, forced=False, warnings=[])
+
+
 def test_the_judges_own_check_reaches_verdict_and_alarms(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     # build_report(judge_polarity=...) as the preflight passes it: a judge that failed its polarity check
     # cannot confirm a gain, and a disagreement names it as a suspect
-    report = make_run(tmp_path / "bad", effect=0.3, drift=0.2, judge_polarity=SimpleNamespace(verdict="inverted"))
+    report = make_run(tmp_path / "bad", effect=0.3, drift=0.2, judge_polarity=_judge_check("inverted"))
     assert report["verdict"]["verdict"] == "not shown" and "inverted" in report["verdict"]["reason"]
-    report = make_run(tmp_path / "good", effect=0.3, drift=0.2, judge_polarity=SimpleNamespace(verdict="ok"))
+    report = make_run(tmp_path / "good", effect=0.3, drift=0.2, judge_polarity=_judge_check("ok"))
     assert report["verdict"]["verdict"] == "improved"
     report = make_run(tmp_path / "weak", effect=0.3, drift=0.2, judge_effect=0.007,
-                      judge_polarity=SimpleNamespace(verdict="weak"))
+                      judge_polarity=_judge_check("weak"))
     [message] = [a["message"] for a in report["alarms"] if a["code"] == "reward-judge-disagree"]
     assert "faulty judge (its polarity check: weak)" in message
 

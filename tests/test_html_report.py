@@ -83,7 +83,7 @@ def test_missing_fields_show_a_dash_and_a_verdict_block_renders_generically(tmp_
     folder, report, _ = _run_folder(tmp_path)
     report["verdict"] = {"outcome": "harm-lowered", "confidence": 0.91, "reasons": ["judge agrees", "drift small"]}
     del report["training"], report["evaluation"]["after"]["guards"]["kl_to_reference"]
-    del report["alarms"], report["evaluation"]["change"]["judge"]["wilcoxon_p"]
+    del report["alarms"], report["evaluation"]["change"]["judge"]["p_value"]
     write_json_atomic(folder / "report.json", report)
     (folder / "pairs.jsonl").unlink()
     page = html_report.write_run_html(folder).read_text(encoding="utf-8")
