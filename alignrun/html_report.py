@@ -180,9 +180,9 @@ def harm_vs_drift_plot(ev: dict[str, Any]) -> str | None:
             harm, kl = _get(ev, when, who, "mean"), _get(ev, when, "guards", key)
             if not isinstance(harm, (int, float)) or not isinstance(kl, (int, float)):
                 break
-            kl_ci = None
-            if when == "after" and _interval(drift_ci):
-                start = _get(ev, "before", "guards", key)
+            kl_ci: list[float] | None = None
+            if when == "after" and drift_ci is not None and _interval(drift_ci):
+                start = float(_get(ev, "before", "guards", key))
                 kl_ci = [start + drift_ci[0], start + drift_ci[1]]
             ends.append((kl, harm, _get(ev, when, who, "mean_ci"), kl_ci))
         if len(ends) == 2:
@@ -195,7 +195,7 @@ def harm_vs_drift_plot(ev: dict[str, Any]) -> str | None:
     for who, colour, ends in points:
         for (kl, harm, ci, kl_ci), marker in zip(ends, ("o", "s")):
             yerr = [[harm - ci[0]], [ci[1] - harm]] if _interval(ci) else None
-            xerr = [[kl - kl_ci[0]], [kl_ci[1] - kl]] if _interval(kl_ci) else None
+            xerr = [[kl - kl_ci[0]], [kl_ci[1] - kl]] if kl_ci is not None else None
             ax.errorbar([kl], [harm], yerr=yerr, xerr=xerr, fmt=marker, color=colour, capsize=3)
         ax.annotate("", xy=ends[1][:2], xytext=ends[0][:2],
                     arrowprops={"arrowstyle": "->", "color": colour, "shrinkA": 6, "shrinkB": 6})
