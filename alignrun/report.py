@@ -14,7 +14,7 @@ A run folder is readable without the code:
     adapter/           the LoRA adapter in peft's format (+ value_head.safetensors)
     checkpoint/        the latest resumable state
 
-report.json (SCHEMA "alignrun.report/1") has these top-level keys:
+report.json (SCHEMA "alignrun.report/2") has these top-level keys:
     schema, run {name, status, steps, seed, wall_s, peak_rss_mb, started, finished, command},
     config (the resolved config as a dict), model {base, trainable_params, total_params, trainable_share},
     preflight {verdict, auroc, reward_auroc, forced}, training {final_kl, final_beta, reward_first,
@@ -33,8 +33,11 @@ from typing import Any
 from alignrun.errors import UserError
 from alignrun.runfolder import read_json, write_json_atomic, write_jsonl_atomic, write_text_atomic
 
-SCHEMA = "alignrun.report/1"
-READABLE_SCHEMAS = {SCHEMA}
+# /2: paired changes carry p_value/test/interval (permutation test, bootstrap-t) instead of wilcoxon_p/rel_ci,
+# distinct-2 is split by its denominator, verdict/drift/data blocks were added. compare reads /1 reports too
+# (it recomputes their statistics from per_prompt).
+SCHEMA = "alignrun.report/2"
+READABLE_SCHEMAS = {"alignrun.report/1", SCHEMA}
 
 CAUTIONS = [
     "A lower classifier score is not a safety guarantee: classifiers miss harm they were not trained on, "

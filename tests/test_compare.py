@@ -186,7 +186,16 @@ def test_compare_reads_the_stored_verdict_and_recomputes_it_for_older_reports(tm
     write_json_atomic(tmp_path / "a" / "report.json", report)
     [row] = as_json(capsys, [tmp_path / "a"])
     assert (row["verdict"], row["verdict_reason"]) == ("not shown", "stored reason")  # read, not recomputed
-    del report["verdict"]  # a report written before the verdict was stored
+    # a report of schema /1, written before the verdict, drift and permutation p-values were stored
+    del report["verdict"], report["evaluation"]["drift"]
+    report["schema"] = "alignrun.report/1"
+    for block in report["evaluation"]["change"].values():
+        block["wilcoxon_p"] = block.pop("p_value")
+        del block["test"], block["interval"]
+    for when in ("before", "after"):
+        guards = report["evaluation"][when]["guards"]
+        guards["distinct_2"] = guards.pop("distinct_2_per_ngram")
+        del guards["distinct_2_per_token"], guards["kl_exact_to_reference"]
     write_json_atomic(tmp_path / "a" / "report.json", report)
     [row] = as_json(capsys, [tmp_path / "a"])
     per, cfg = report["evaluation"]["per_prompt"], BASE.evaluation

@@ -221,7 +221,7 @@ def test_end_to_end_run_writes_every_file_and_the_adapter_reloads(tmp_path: Path
     assert [r["step"] for r in rows] == [1, 2]
     assert {"reward_mean", "kl_mean", "beta", "policy_loss", "value_loss", "clip_frac", "entropy",
             "approx_kl", "step_s", "tokens_per_s"} <= set(rows[0])
-    assert report["schema"] == "alignrun.report/1" and report["run"]["steps"] == 2
+    assert report["schema"] == "alignrun.report/2" and report["run"]["steps"] == 2
     assert report["model"]["trainable_params"] > 0
 
     # The saved adapter, loaded with peft on the base, reproduces the saved log-probs of the after-samples.
