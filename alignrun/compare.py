@@ -22,10 +22,11 @@ from typing import Any
 import numpy as np
 
 from alignrun import metrics
+from alignrun.config import flatten
 from alignrun.errors import UserError
 from alignrun.report import CAUTIONS, load_report, num
 from alignrun.runfolder import read_status, write_text_atomic
-from alignrun.sweep import flatten, read_index
+from alignrun.sweep import read_index
 
 NOT_SHOWN = {"run.name", "run.out", "run.trackers", "run.tracker_dir", "base.threads"}  # differ between runs without changing what they measure
 REQUIRED = ("run.wall_s", "run.peak_rss_mb", "config.evaluation.bootstrap_resamples", "config.run.seed",

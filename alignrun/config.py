@@ -464,6 +464,17 @@ def to_toml(cfg: Experiment) -> str:
     return tomli_w.dumps(cfg.model_dump(mode="json", exclude_none=True))
 
 
+def flatten(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
+    """A nested config dict as {dotted key: value}."""
+    flat: dict[str, Any] = {}
+    for key, value in tree.items():
+        if isinstance(value, dict):
+            flat.update(flatten(value, f"{prefix}{key}."))
+        else:
+            flat[prefix + key] = value
+    return flat
+
+
 def with_overrides(cfg: Experiment, updates: dict[str, Any]) -> Experiment:
     """A copy of cfg with dotted keys replaced, validated again (used by sweeps)."""
     tree = cfg.model_dump(mode="json", exclude_none=True)

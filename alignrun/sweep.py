@@ -28,7 +28,7 @@ from typing import Any, get_args
 
 from pydantic import BaseModel
 
-from alignrun.config import Experiment, load_config, with_overrides
+from alignrun.config import Experiment, flatten, load_config, with_overrides
 from alignrun.errors import UserError
 from alignrun.report import load_report
 from alignrun.runfolder import RunFolder, read_json, write_json_atomic
@@ -67,17 +67,6 @@ def config_keys(model: type[BaseModel] = Experiment, prefix: str = "") -> list[s
         if nested:
             keys += config_keys(nested[0], f"{prefix}{name}.")
     return keys
-
-
-def flatten(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
-    """A nested config dict as {dotted key: value}."""
-    flat: dict[str, Any] = {}
-    for key, value in tree.items():
-        if isinstance(value, dict):
-            flat.update(flatten(value, f"{prefix}{key}."))
-        else:
-            flat[prefix + key] = value
-    return flat
 
 
 def _check_grid(cfg: Experiment, source: str) -> None:

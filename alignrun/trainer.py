@@ -22,7 +22,7 @@ from accelerate import Accelerator
 from trl.trainer.utils import entropy_from_logits, selective_log_softmax
 
 from alignrun import console, evaluation, html_report, ppo, tracking
-from alignrun.config import Experiment, load_config, to_toml
+from alignrun.config import Experiment, flatten, load_config, to_toml
 from alignrun.data import load_prompts
 from alignrun.errors import UserError
 from alignrun.inputs import check_inputs
@@ -632,13 +632,7 @@ NOT_RESULT_KEYS = {"run.name", "run.out", "run.checkpoint_every", "run.trackers"
 
 def result_differences(saved: Experiment, cfg: Experiment) -> list[str]:
     """'key: X in the run, Y now' for every key that changes a run's result and differs between the configs."""
-    def flat(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
-        out: dict[str, Any] = {}
-        for key, value in tree.items():
-            out.update(flat(value, f"{prefix}{key}.") if isinstance(value, dict) else {f"{prefix}{key}": value})
-        return out
-
-    old, new = flat(saved.model_dump(mode="json", exclude={"sweep"})), flat(cfg.model_dump(mode="json", exclude={"sweep"}))
+    old, new = (flatten(c.model_dump(mode="json", exclude={"sweep"})) for c in (saved, cfg))
     keys = [k for k in dict.fromkeys([*old, *new]) if k not in NOT_RESULT_KEYS and old.get(k) != new.get(k)]
     return [f"{k}: {old.get(k)!r} in the run, {new.get(k)!r} now" for k in keys]
 
