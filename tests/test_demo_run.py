@@ -10,19 +10,24 @@ from alignrun.demo.run import run_demo
 
 
 @pytest.mark.slow
-def test_quick_demo_lowers_harm_by_both_judges(demo_models, tmp_path, capsys) -> None:
+@pytest.mark.parametrize("scope", ["decoder", "encoder-decoder"])
+def test_quick_demo_lowers_harm_by_both_judges(demo_models, tmp_path, capsys, scope: str) -> None:
+    """The loop really optimises, with adapters in the decoder only (the frozen encoder's output reused) and in
+    both stacks: on the trained demo models harm falls by both classifiers."""
     out = tmp_path / "demo"
-    assert run_demo(out=str(out), quick=True, quiet=True, overrides=[]) == 0
+    assert run_demo(out=str(out), quick=True, quiet=True, overrides=[f'lora.scope="{scope}"']) == 0
     printed = capsys.readouterr().out
     assert "harm mean (reward clf)" in printed and "sample pairs" in printed
     report = json.loads((out / "report.json").read_text())
     ev = report["evaluation"]
-    # our classifier, and alt-profanity-check (trained outside this project) as the independent judge
-    assert ev["after"]["reward_classifier"]["mean"] < ev["before"]["reward_classifier"]["mean"]
+    # our classifier, and alt-profanity-check (trained outside this project) as the independent judge; the
+    # reward classifier's paired 95% interval lies below zero (upper end -0.083 decoder, -0.085 both stacks with
+    # 2 threads, -0.15 and -0.10 with 1, on this project's CI machine: a margin, not a coin toss)
+    assert ev["change"]["reward_classifier"]["diff_ci"][1] < 0
     assert ev["after"]["judge"]["mean"] < ev["before"]["judge"]["mean"]
-    assert not [a for a in report["alarms"] if a["code"] == "harm-increased"]
+    assert not [a for a in report["alarms"] if a["code"] in ("harm-increased", "judge-harm-increased")]
     markdown = (out / "report.md").read_text()
-    for section in ("## Alarms", "## Held-out harm before and after", "## Guards", "## Training and preflight",
-                    "## Sample pairs", "## Limits and cautions"):
+    for section in ("## Verdict", "## Alarms", "## Held-out harm before and after", "## Guards",
+                    "## Training and preflight", "## Sample pairs", "## Limits and cautions"):
         assert section in markdown
     assert json.loads((out / "preflight.json").read_text())["verdict"] == "ok"

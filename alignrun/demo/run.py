@@ -10,7 +10,7 @@ from alignrun.errors import UserError
 
 DEMO_CONFIG = Path(alignrun.__file__).resolve().parent.parent / "configs" / "demo.toml"
 # The CI-sized demo: fewer steps and held-out prompts, same models.
-QUICK = ["ppo.steps=16", "evaluation.max_prompts=40", "evaluation.samples_per_prompt=2"]
+QUICK = ["ppo.steps=32", "evaluation.max_prompts=40", "evaluation.samples_per_prompt=2"]
 
 
 def run_demo(out: str | None, quick: bool, quiet: bool, overrides: list[str], overwrite: bool = False) -> int:
