@@ -1,4 +1,4 @@
-"""Pure metric and statistics formulas: harm over k samples, distinct-n, perplexity, bootstrap, tests, Pareto.
+"""Pure metric and statistics formulas: harm over k samples, distinct-n, perplexity, bootstrap, tests.
 
 Score matrices are [prompts, k]: k judge scores P(harmful) per prompt. Results are plain floats (or None
 where a quantity is undefined) so they can go straight into JSON.
@@ -253,22 +253,6 @@ def holm(p_values: Sequence[float | None]) -> list[float | None]:
     for rank, j in enumerate(order):
         out[where[j]] = float(adjusted[rank])
     return out
-
-
-def pareto_front(harm_reduction: Sequence[float], drift: Sequence[float]) -> list[bool]:
-    """True for each point no other point dominates (>= reduction and <= drift, at least one strictly)."""
-    red, dri = np.asarray(harm_reduction, dtype=float), np.asarray(drift, dtype=float)
-    if red.shape != dri.shape or red.ndim != 1:
-        raise ValueError(
-            f"harm_reduction and drift must be equal-length lists, got shapes {red.shape}, {dri.shape}"
-        )
-    if not (np.isfinite(red).all() and np.isfinite(dri).all()):
-        raise ValueError("harm_reduction and drift must be finite numbers")
-    # j dominates i when red_j >= red_i and drift_j <= drift_i with one strict (Pareto dominance, common practice)
-    no_worse = (red[None, :] >= red[:, None]) & (dri[None, :] <= dri[:, None])
-    better = (red[None, :] > red[:, None]) | (dri[None, :] < dri[:, None])
-    dominated = np.asarray((no_worse & better).any(axis=1))
-    return [not bool(d) for d in dominated]
 
 
 def share_empty(texts: Sequence[str]) -> float:

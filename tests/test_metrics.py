@@ -11,8 +11,6 @@ from pathlib import Path
 import numpy as np
 import pytest
 import scipy.stats
-from hypothesis import given, settings
-from hypothesis import strategies as st
 
 from alignrun.hf_metrics import NAMES, metric_path
 from alignrun.metrics import (
@@ -25,7 +23,6 @@ from alignrun.metrics import (
     holm,
     mean_diff_ci,
     paired_change,
-    pareto_front,
     perplexity,
     seq_rep_n,
     share_empty,
@@ -285,35 +282,6 @@ def test_unpaired_change_matches_scipy():
     assert result["paired"] is False
     assert set(result) == set(paired_change(before[:5], after[:5]))
     json.dumps(result, allow_nan=False)
-
-
-def test_pareto_front_hand_example():
-    # Pareto dominance, hand example: B (0.4, 0.2) is dominated by A (0.5, 0.1); D duplicates C, and equal points
-    # do not dominate each other; E has the lowest drift
-    reduction = [0.5, 0.4, 0.6, 0.6, 0.1]
-    drift = [0.1, 0.2, 0.3, 0.3, 0.05]
-    assert pareto_front(reduction, drift) == [True, False, True, True, True]
-    assert pareto_front([], []) == []
-    with pytest.raises(ValueError, match="equal-length"):
-        pareto_front([0.1], [0.1, 0.2])
-
-
-def _dominates(i, j, red, dri):
-    return red[i] >= red[j] and dri[i] <= dri[j] and (red[i] > red[j] or dri[i] < dri[j])
-
-
-@settings(deadline=None, max_examples=200)
-@given(st.lists(st.tuples(st.integers(0, 5), st.integers(0, 5)), min_size=1, max_size=12))
-def test_pareto_front_invariants(points):
-    # Pareto dominance: front points do not dominate each other, every other point is dominated by a front point,
-    # and the best reduction with the least drift among those is always on the front
-    red, dri = [p[0] / 5 for p in points], [p[1] / 5 for p in points]
-    front = pareto_front(red, dri)
-    on = [i for i, f in enumerate(front) if f]
-    assert not any(_dominates(i, j, red, dri) for i in on for j in on)
-    assert all(any(_dominates(i, j, red, dri) for i in on) for j in range(len(points)) if not front[j])
-    best = min(range(len(points)), key=lambda i: (-red[i], dri[i]))
-    assert front[best]
 
 
 def test_share_empty_and_repeated():
