@@ -36,7 +36,7 @@ from alignrun.models import (
     set_threads,
 )
 from alignrun.preflight import require_polarity
-from alignrun.report import build_report, load_report, write_report
+from alignrun.report import build_report, load_report, num, write_report
 from alignrun.reward import load_scorer, reward_from_scores
 from alignrun.rollout import Rollout, rollout
 from alignrun.runfolder import (
@@ -473,8 +473,7 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                     if cfg.run.checkpoint_every and step % cfg.run.checkpoint_every == 0:
                         _checkpoint(accelerator, ckpt, policy, optimizer, controller, step)
                     bar.update(1)
-                    bar.set_postfix(reward=f"{row['reward_mean']:.3f}", kl=f"{row['kl_mean']:.3f}",
-                                    beta=f"{row['beta']:.3f}")
+                    bar.set_postfix(reward=num(row["reward_mean"]), kl=num(row["kl_mean"]), beta=num(row["beta"]))
                     if _any_process(accelerator, stop.requested):
                         _checkpoint(accelerator, ckpt, policy, optimizer, controller, step)
                         raise KeyboardInterrupt
