@@ -24,7 +24,8 @@ import numpy as np
 from alignrun import metrics
 from alignrun.config import flatten
 from alignrun.errors import UserError
-from alignrun.report import CAUTIONS, load_report, num
+from alignrun.metrics import num
+from alignrun.report import CAUTIONS, load_report
 from alignrun.runfolder import read_status, write_text_atomic
 from alignrun.sweep import read_index
 

@@ -13,8 +13,8 @@ import torch
 
 from alignrun import metrics
 from alignrun.config import Experiment
+from alignrun.metrics import num
 from alignrun.models import Policy, encoder_outputs
-from alignrun.report import num
 from alignrun.rollout import encode_prompts, frozen_encoding, response_mask, sample
 from alignrun.runfolder import write_jsonl_atomic
 

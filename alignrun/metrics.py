@@ -267,3 +267,9 @@ def share_repeated(texts: Sequence[str]) -> float:
     """
     counts = Counter(text.strip() for text in texts)
     return sum(counts[text.strip()] > 1 for text in texts) / len(texts) if len(texts) else 0.0
+
+
+def num(x: float, digits: int = 3, sign: bool = False) -> str:
+    """A number for people: rounded first, so a tiny negative value never prints as "-0.000"."""
+    value = round(float(x), digits) + 0.0  # + 0.0 turns -0.0 into 0.0
+    return f"{value:+.{digits}f}" if sign else f"{value:.{digits}f}"

@@ -31,6 +31,7 @@ from pathlib import Path
 from typing import Any
 
 from alignrun.errors import UserError
+from alignrun.metrics import num
 from alignrun.runfolder import read_json, write_json_atomic, write_jsonl_atomic, write_text_atomic
 
 # /2: paired changes carry p_value/test/interval (permutation test, bootstrap-t) instead of wilcoxon_p/rel_ci,
@@ -157,12 +158,6 @@ def write_report(out: Path, report: dict[str, Any], before: Any, after: Any) -> 
     write_text_atomic(out / "pairs.csv", buf.getvalue())
     write_json_atomic(out / "report.json", report)
     write_text_atomic(out / "report.md", render_markdown(report, pairs))
-
-
-def num(x: float, digits: int = 3, sign: bool = False) -> str:
-    """A number for people: rounded first, so a tiny negative value never prints as "-0.000"."""
-    value = round(float(x), digits) + 0.0  # + 0.0 turns -0.0 into 0.0
-    return f"{value:+.{digits}f}" if sign else f"{value:.{digits}f}"
 
 
 GUARD_LABELS = {  # how reports name each guard; the denominators are part of the name

@@ -26,6 +26,7 @@ from alignrun.config import Experiment, flatten, load_config, to_toml
 from alignrun.data import load_prompts
 from alignrun.errors import UserError
 from alignrun.inputs import check_inputs
+from alignrun.metrics import num
 from alignrun.models import (
     Policy,
     autocast,
@@ -36,7 +37,7 @@ from alignrun.models import (
     set_threads,
 )
 from alignrun.preflight import require_polarity
-from alignrun.report import build_report, load_report, num, write_report
+from alignrun.report import build_report, load_report, write_report
 from alignrun.reward import load_scorer, reward_from_scores
 from alignrun.rollout import Rollout, rollout
 from alignrun.runfolder import (

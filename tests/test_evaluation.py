@@ -12,8 +12,8 @@ from transformers import AutoModelForSeq2SeqLM
 
 from alignrun.config import BaseSection, Experiment, LoraSection, ReferenceSection
 from alignrun.evaluation import EvalResult, alarms, evaluate_policy, summarise, verdict
+from alignrun.metrics import num
 from alignrun.models import build_policy, export_merged, save_adapter
-from alignrun.report import num
 from alignrun.runfolder import write_text_atomic
 
 
