@@ -490,3 +490,14 @@ def with_overrides(cfg: Experiment, updates: dict[str, Any]) -> Experiment:
         return Experiment.model_validate(tree)
     except ValidationError as exc:
         raise UserError("invalid sweep trial:\n  " + "\n  ".join(_describe_errors(exc, origin, "sweep"))) from None
+
+
+# keys that name or pace a run without changing its numbers; every other key must match on --resume
+NOT_RESULT_KEYS = {"run.name", "run.out", "run.checkpoint_every", "run.trackers", "run.tracker_dir"}
+
+
+def result_differences(saved: Experiment, cfg: Experiment) -> list[str]:
+    """'key: X in the run, Y now' for every key that changes a run's result and differs between the configs."""
+    old, new = (flatten(c.model_dump(mode="json", exclude={"sweep"})) for c in (saved, cfg))
+    keys = [k for k in dict.fromkeys([*old, *new]) if k not in NOT_RESULT_KEYS and old.get(k) != new.get(k)]
+    return [f"{k}: {old.get(k)!r} in the run, {new.get(k)!r} now" for k in keys]

@@ -4,7 +4,7 @@ against drift and collapse, and alarms. Formulas live in `metrics`; this module 
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Any
 
@@ -332,3 +332,17 @@ def summary_text(report: dict[str, Any]) -> str:
         lines.append(f"{who.replace('_', ' ')}: mean harm change {num(c['diff'], sign=True)}, 95% interval {_ci(c)} "
                      f"({c['interval']}); p = {p} ({c['test']})")
     return "\n".join(lines)
+
+
+def join_results(parts: list[EvalResult]) -> EvalResult:
+    """Evaluation results of consecutive prompt shares as one (lists and per-prompt arrays concatenated)."""
+    joined: dict[str, Any] = {}
+    for field in fields(parts[0]):
+        values = [getattr(part, field.name) for part in parts]
+        if values[0] is None:
+            joined[field.name] = None
+        elif isinstance(values[0], np.ndarray):
+            joined[field.name] = np.concatenate(values)
+        else:
+            joined[field.name] = [item for value in values for item in value]
+    return type(parts[0])(**joined)

@@ -245,3 +245,29 @@ def busy_error(folder: Path, owner: dict[str, Any]) -> UserError:
     return UserError(f"{folder}: another alignrun process is writing this run folder (pid {owner.get('pid', '?')} "
                      f"on {owner.get('host', '?')}, since {owner.get('since', '?')}); wait for it to end, or use "
                      "another --out")
+
+
+def check_run_folder(out: Path, resume: bool, overwrite: bool) -> None:
+    """Refuse what would lose results: a folder another process is writing, a new run into a folder that holds
+    a run (unless overwrite), a resume of a folder that holds none."""
+    owner = lock_owner(out)
+    if owner and owner_alive(owner):  # checked first: a live run is never offered --resume or --overwrite
+        raise busy_error(out, owner)
+    held = run_files(out)
+    if resume and not held:
+        raise UserError(f"--resume {out}: the folder holds no run; start a new run with --out {out}")
+    if not resume and held and not overwrite:
+        finished = (out / "report.json").exists()
+        raise UserError(f"{out}: already holds {describe_run(out)}; "
+                        + ("" if finished else f"continue it with --resume {out}, ")
+                        + "keep it and choose another --out, or replace it with --overwrite")
+
+
+def remove_run_files(out: Path) -> None:
+    """--overwrite: the previous run's own files go (with their staging leftovers); other files stay."""
+    for name in run_files(out):
+        path = out / name.rstrip("/")
+        shutil.rmtree(path) if path.is_dir() else path.unlink()
+    for name in ("adapter", "checkpoint"):
+        for leftover in (out / f".{name}.tmp", out / f".{name}.old"):
+            shutil.rmtree(leftover, ignore_errors=True)

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import contextlib
-import copy
 import dataclasses
 import json
 import platform
@@ -22,7 +21,17 @@ from accelerate import Accelerator
 from trl.trainer.utils import entropy_from_logits, selective_log_softmax
 
 from alignrun import console, evaluation, html_report, ppo, tracking
-from alignrun.config import Experiment, flatten, load_config, to_toml
+from alignrun.checkpoint import (
+    checkpoint_step,
+    load_checkpoint,
+    read_metrics,
+    restore,
+    save_on_main,
+    saved_step,
+    snapshot,
+    truncate_metrics,
+)
+from alignrun.config import Experiment, load_config, result_differences, to_toml
 from alignrun.data import load_prompts
 from alignrun.errors import UserError
 from alignrun.inputs import check_inputs
@@ -31,7 +40,6 @@ from alignrun.models import (
     Policy,
     autocast,
     build_policy,
-    load_adapter_into,
     pick_device,
     save_adapter,
     set_threads,
@@ -42,15 +50,9 @@ from alignrun.reward import load_scorer, reward_from_scores
 from alignrun.rollout import Rollout, rollout
 from alignrun.runfolder import (
     RunFolder,
-    busy_error,
-    describe_run,
-    lock_owner,
-    owner_alive,
-    read_json,
+    check_run_folder,
     read_status,
-    replace_folder,
-    run_files,
-    staging_folder,
+    remove_run_files,
     write_json_atomic,
     write_text_atomic,
 )
@@ -219,92 +221,6 @@ def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Opti
     }
 
 
-# ---------------------------------------------------------------- checkpoints
-
-def rng_state() -> dict[str, Any]:
-    """This process's random number generators (torch CPU, Python, numpy) in a form torch.save keeps."""
-    np_state: tuple[Any, ...] = np.random.get_state(legacy=True)  # type: ignore[assignment]
-    return {"torch": torch.get_rng_state(), "python": random.getstate(),
-            "numpy": [np_state[0], torch.from_numpy(np_state[1].astype(np.int64)), *np_state[2:]]}
-
-
-def set_rng_state(state: dict[str, Any]) -> None:
-    torch.set_rng_state(state["torch"])
-    py = state["python"]
-    random.setstate((py[0], tuple(py[1]), py[2]))
-    npst = state["numpy"]
-    np.random.set_state((npst[0], npst[1].numpy().astype(np.uint32), *npst[2:]))
-
-
-def snapshot(net: torch.nn.Module, optimizer: torch.optim.Optimizer, controller: ppo.KLController) -> dict[str, Any]:
-    """Everything a step changes: trainable weights (adapter, value head), optimiser state with its step counters,
-    the KL controller and the random generators; `restore` puts it back after a NaN/inf mid-step."""
-    return {"weights": {n: p.detach().clone() for n, p in net.named_parameters() if p.requires_grad},
-            "optimizer": copy.deepcopy(optimizer.state_dict()), "kl_controller": controller.state_dict(),
-            "rng": rng_state()}
-
-
-def restore(state: dict[str, Any], net: torch.nn.Module, optimizer: torch.optim.Optimizer,
-            controller: ppo.KLController) -> None:
-    with torch.no_grad():
-        for name, p in net.named_parameters():
-            if p.requires_grad:
-                p.copy_(state["weights"][name])
-                p.grad = None
-    optimizer.load_state_dict(state["optimizer"])
-    controller.load_state_dict(state["kl_controller"])
-    set_rng_state(state["rng"])
-
-
-def all_rng_states(accelerator: Accelerator) -> list[dict[str, Any]]:
-    """Every process's random generators, in process order (a collective call: every process must make it)."""
-    if accelerator.num_processes == 1:
-        return [rng_state()]
-    states: list[Any] = [None] * accelerator.num_processes
-    torch.distributed.all_gather_object(states, rng_state())
-    return states
-
-
-def save_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimizer,
-                    controller: ppo.KLController, step: int, rng: list[dict[str, Any]] | None = None) -> None:
-    """Adapter, value head, optimiser, KL controller, every process's RNG states (`rng`, default this process's)
-    and data position (= step), atomically."""
-    tmp = staging_folder(folder)
-    save_adapter(policy, tmp / "adapter")
-    torch.save({"step": step, "optimizer": optimizer.state_dict(), "kl_controller": controller.state_dict(),
-                "rng": rng or [rng_state()]}, tmp / "trainer_state.pt")
-    write_json_atomic(tmp / "checkpoint.json", {"step": step})
-    replace_folder(tmp, folder)
-
-
-def load_checkpoint(folder: Path, policy: Policy, optimizer: torch.optim.Optimizer,
-                    controller: ppo.KLController, process: int = 0, processes: int = 1) -> int:
-    load_adapter_into(policy, folder / "adapter")
-    state = torch.load(folder / "trainer_state.pt", weights_only=True)
-    if "rng" not in state:  # written before every process's RNG was kept: one process's, under three keys
-        state["rng"] = [{key: state[f"rng_{key}"] for key in ("torch", "python", "numpy")}]
-    if len(state["rng"]) != processes:
-        raise UserError(f"{folder}: the checkpoint was written by {len(state['rng'])} process(es); resume it with "
-                        f"the same number (now {processes})")
-    optimizer.load_state_dict(state["optimizer"])
-    controller.load_state_dict(state["kl_controller"])
-    set_rng_state(state["rng"][process])
-    return int(state["step"])
-
-
-def _checkpoint(accelerator: Accelerator, folder: Path, policy: Policy, optimizer: torch.optim.Optimizer,
-                controller: ppo.KLController, step: int) -> None:
-    """save_checkpoint from the main process with every process's RNG (call it on every process)."""
-    states = all_rng_states(accelerator)
-    if accelerator.is_main_process:
-        save_checkpoint(folder, policy, optimizer, controller, step, states)
-
-
-def _truncate_metrics(path: Path, step: int) -> None:
-    keep = [row for row in _read_metrics(path) if row["step"] <= step]
-    write_text_atomic(path, "".join(json.dumps(row) + "\n" for row in keep))
-
-
 # ---------------------------------------------------------------- the run
 
 def environment(cfg: Experiment, threads: int, device: torch.device, accelerator: Accelerator) -> dict[str, Any]:
@@ -335,48 +251,8 @@ def run_experiment(cfg: Experiment, out: Path, *, resume: bool = False, force: b
     main = accelerator.is_main_process
     with folder if main else _NoLock(), tracking.trackers(accelerator, cfg, out):
         if main and overwrite and not resume:
-            _remove_run_files(out)
+            remove_run_files(out)
         return _run_locked(cfg, out, folder, accelerator, main, resume, force, quiet, previous)
-
-
-def check_run_folder(out: Path, resume: bool, overwrite: bool) -> None:
-    """Refuse what would lose results: a folder another process is writing, a new run into a folder that holds
-    a run (unless overwrite), a resume of a folder that holds none."""
-    owner = lock_owner(out)
-    if owner and owner_alive(owner):  # checked first: a live run is never offered --resume or --overwrite
-        raise busy_error(out, owner)
-    held = run_files(out)
-    if resume and not held:
-        raise UserError(f"--resume {out}: the folder holds no run; start a new run with --out {out}")
-    if not resume and held and not overwrite:
-        finished = (out / "report.json").exists()
-        raise UserError(f"{out}: already holds {describe_run(out)}; "
-                        + ("" if finished else f"continue it with --resume {out}, ")
-                        + "keep it and choose another --out, or replace it with --overwrite")
-
-
-def _remove_run_files(out: Path) -> None:
-    """--overwrite: the previous run's own files go (with their staging leftovers); other files stay."""
-    import shutil
-
-    for name in run_files(out):
-        path = out / name.rstrip("/")
-        shutil.rmtree(path) if path.is_dir() else path.unlink()
-    for name in ("adapter", "checkpoint"):
-        for leftover in (out / f".{name}.tmp", out / f".{name}.old"):
-            shutil.rmtree(leftover, ignore_errors=True)
-
-
-def _checkpoint_step(ckpt: Path) -> int:
-    """The step of the complete checkpoint in `ckpt`, 0 when there is none."""
-    path = ckpt / "checkpoint.json"
-    if not path.exists():
-        return 0
-    saved = read_json(path, "checkpoint record")
-    if not isinstance(saved, dict) or not isinstance(saved.get("step"), int):
-        raise UserError(f"{path}: not a checkpoint record ({{\"step\": N}}); the checkpoint is damaged: restore it, "
-                        f"or delete {ckpt} to restart training from step 0 with --resume")
-    return saved["step"]
 
 
 class _NoLock:
@@ -395,7 +271,7 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
     device = accelerator.device
     seed_everything(cfg.run.seed)
     ckpt = out / "checkpoint"
-    step = start = _checkpoint_step(ckpt) if resume else 0
+    step = start = checkpoint_step(ckpt) if resume else 0
     stage = "preflight"
     if resume and main:
         if previous and previous.get("note"):
@@ -445,8 +321,8 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                                 f"--resume {out}") from None
         stage = "training"
         if resume and main:
-            _truncate_metrics(out / "metrics.jsonl", step)  # rows after the checkpoint (all, without one) are redone
-        history = _read_metrics(out / "metrics.jsonl") if resume else []
+            truncate_metrics(out / "metrics.jsonl", step)  # rows after the checkpoint (all, without one) are redone
+        history = read_metrics(out / "metrics.jsonl") if resume else []
         per_proc = cfg.ppo.prompts_per_step // accelerator.num_processes
         bar = console.progress(cfg.ppo.steps, "ppo", "step", quiet or not main, initial=step)
         try:
@@ -459,7 +335,7 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                         row = train_step(policy, net, optimizer, accelerator, scorer, controller, mine, cfg, step, device)
                     except NonFinite as exc:
                         restore(before_step, net, optimizer, controller)  # minibatches before the NaN are undone
-                        _checkpoint(accelerator, ckpt, policy, optimizer, controller, step)
+                        save_on_main(accelerator, ckpt, policy, optimizer, controller, step)
                         if main:
                             save_adapter(policy, out / "adapter")
                         raise UserError(f"stopped: {exc}. The last good adapter and checkpoint (after step {step}) "
@@ -472,15 +348,15 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                         log.flush()
                         folder.set_status("running", step=step)
                     if cfg.run.checkpoint_every and step % cfg.run.checkpoint_every == 0:
-                        _checkpoint(accelerator, ckpt, policy, optimizer, controller, step)
+                        save_on_main(accelerator, ckpt, policy, optimizer, controller, step)
                     bar.update(1)
                     bar.set_postfix(reward=num(row["reward_mean"]), kl=num(row["kl_mean"]), beta=num(row["beta"]))
                     if _any_process(accelerator, stop.requested):
-                        _checkpoint(accelerator, ckpt, policy, optimizer, controller, step)
+                        save_on_main(accelerator, ckpt, policy, optimizer, controller, step)
                         raise KeyboardInterrupt
         finally:
             bar.close()
-        _checkpoint(accelerator, ckpt, policy, optimizer, controller, step)
+        save_on_main(accelerator, ckpt, policy, optimizer, controller, step)
         if main:
             save_adapter(policy, out / "adapter")
         stage = "after-training evaluation"
@@ -505,7 +381,7 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
         return report
     except KeyboardInterrupt:
         if main:
-            saved = _saved_step(ckpt)
+            saved = saved_step(ckpt)
             with contextlib.suppress(Exception):
                 folder.set_status("interrupted", step=saved, stage=stage)
             print(f"\ninterrupted during the {stage}; continue with: alignrun run CONFIG --resume {out} "
@@ -523,14 +399,6 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                 else:
                     folder.set_status("failed", step=step, stage=stage, error=error)
         raise
-
-
-def _saved_step(ckpt: Path) -> int:
-    """The checkpoint step a resume starts from; 0 when the checkpoint is missing or unreadable."""
-    try:
-        return _checkpoint_step(ckpt)
-    except UserError:
-        return 0
 
 
 class _StopAtStepEnd:
@@ -555,27 +423,6 @@ class _StopAtStepEnd:
     def __exit__(self, *exc: object) -> None:
         if self.active:
             signal.signal(signal.SIGINT, self.previous)
-
-
-def _read_metrics(path: Path) -> list[dict[str, float]]:
-    """metrics.jsonl rows; a torn last line (a crash mid-append) is dropped, its step is redone on resume."""
-    if not path.exists():
-        return []
-    try:
-        lines = [ln for ln in path.read_text(encoding="utf-8").splitlines() if ln.strip()]
-    except UnicodeDecodeError:
-        raise UserError(f"{path}: not UTF-8 text; the metrics file is damaged: restore it, or start a new run "
-                        "with another --out") from None
-    rows = []
-    for n, line in enumerate(lines, 1):
-        try:
-            rows.append(json.loads(line))
-        except json.JSONDecodeError:
-            if n == len(lines):
-                break
-            raise UserError(f"{path}: line {n} is not valid JSON; the metrics file is damaged: restore it, or start "
-                            "a new run with another --out") from None
-    return rows
 
 
 def _evaluate_once(path: Path, policy: Policy, prompts: list[str], scorer: Any, judge: Any, cfg: Experiment,
@@ -604,37 +451,12 @@ def _evaluate_once(path: Path, policy: Policy, prompts: list[str], scorer: Any, 
     if processes > 1:
         parts: list[Any] = [None] * processes
         torch.distributed.all_gather_object(parts, result)
-        result = _join_results([r for r in parts if r is not None])
+        result = evaluation.join_results([r for r in parts if r is not None])
     assert result is not None
     if main:
         evaluation.write_samples(path, result)
         return evaluation.read_samples(path)  # the very numbers a resumed run reads back
     return result
-
-
-def _join_results(parts: list[evaluation.EvalResult]) -> evaluation.EvalResult:
-    """Evaluation results of consecutive prompt shares as one (lists and per-prompt arrays concatenated)."""
-    joined: dict[str, Any] = {}
-    for field in dataclasses.fields(parts[0]):
-        values = [getattr(part, field.name) for part in parts]
-        if values[0] is None:
-            joined[field.name] = None
-        elif isinstance(values[0], np.ndarray):
-            joined[field.name] = np.concatenate(values)
-        else:
-            joined[field.name] = [item for value in values for item in value]
-    return type(parts[0])(**joined)
-
-
-# keys that name or pace a run without changing its numbers; every other key must match on --resume
-NOT_RESULT_KEYS = {"run.name", "run.out", "run.checkpoint_every", "run.trackers", "run.tracker_dir"}
-
-
-def result_differences(saved: Experiment, cfg: Experiment) -> list[str]:
-    """'key: X in the run, Y now' for every key that changes a run's result and differs between the configs."""
-    old, new = (flatten(c.model_dump(mode="json", exclude={"sweep"})) for c in (saved, cfg))
-    keys = [k for k in dict.fromkeys([*old, *new]) if k not in NOT_RESULT_KEYS and old.get(k) != new.get(k)]
-    return [f"{k}: {old.get(k)!r} in the run, {new.get(k)!r} now" for k in keys]
 
 
 def run_from_cli(config_path: str, overrides: list[str], *, out: str | None, resume: str | None,

@@ -364,7 +364,7 @@ def test_train_step_wiring(tmp_path: Path, tiny_models, monkeypatch) -> None:
 def test_checkpoint_keeps_every_process_rng_and_reads_the_older_single_rng_form(tmp_path: Path, tiny_models) -> None:
     # common practice: a resumed run draws the random numbers the uninterrupted one would have drawn
     from alignrun import ppo
-    from alignrun.trainer import load_checkpoint, rng_state, save_checkpoint
+    from alignrun.checkpoint import load_checkpoint, rng_state, save_checkpoint
 
     policy = build_policy(BaseSection(model=str(tiny_models["t5"])), LoraSection(rank=4), ReferenceSection(), CPU)
     optimizer = torch.optim.AdamW([p for p in policy.net.parameters() if p.requires_grad])

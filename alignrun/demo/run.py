@@ -17,7 +17,8 @@ def run_demo(out: str | None, quick: bool, quiet: bool, overrides: list[str], ov
     from alignrun.config import load_config
     from alignrun.demo.build import build_demo
     from alignrun.evaluation import summary_text
-    from alignrun.trainer import check_run_folder, run_experiment
+    from alignrun.runfolder import check_run_folder
+    from alignrun.trainer import run_experiment
 
     if not DEMO_CONFIG.is_file():
         raise UserError(f"{DEMO_CONFIG}: the demo config is missing; run the demo from a checkout of the repository")
