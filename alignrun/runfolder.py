@@ -21,7 +21,7 @@ from alignrun.errors import UserError
 
 # Files and folders a run writes; any one of them marks a folder as holding a run (eval_*.jsonl by pattern).
 RUN_FILES = ("config.toml", "environment.json", "preflight.json", "status.json", "metrics.jsonl", "report.json",
-             "report.md", "pairs.jsonl", "pairs.csv", "adapter", "checkpoint")
+             "report.md", "report.html", "pairs.jsonl", "pairs.csv", "adapter", "checkpoint")
 RUN_PATTERNS = ("eval_*.jsonl",)
 
 
