@@ -15,6 +15,7 @@ import json
 import math
 import os
 import sys
+import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -24,10 +25,12 @@ import numpy as np
 from alignrun import metrics
 from alignrun.config import flatten
 from alignrun.errors import UserError
+from alignrun.html_report import write_comparison
 from alignrun.metrics import num
 from alignrun.report import CAUTIONS, load_report
 from alignrun.runfolder import read_status, write_text_atomic
 from alignrun.sweep import read_index
+from alignrun.verdict import judge_is_reward, verdict
 
 NOT_SHOWN = {"run.name", "run.out", "run.trackers", "run.tracker_dir", "base.threads"}  # differ between runs without changing what they measure
 REQUIRED = ("run.wall_s", "run.peak_rss_mb", "config.evaluation.bootstrap_resamples", "config.run.seed",
@@ -187,14 +190,9 @@ def run_row(run: Run) -> dict[str, Any]:
 
 def _recomputed_verdict(rep: dict[str, Any], harm: dict[str, Any], judge: dict[str, Any] | None) -> dict[str, str]:
     """The verdict for reports written before it was stored: the same rule on the recomputed changes."""
-    from alignrun.evaluation import verdict
-
-    cfg = rep["config"]
-    judge_cfg = cfg["evaluation"].get("judge")
-    judge_is_reward = judge_cfg is not None and (
-        (judge_cfg["backend"], judge_cfg["source"]) == (cfg["reward"]["backend"], cfg["reward"]["source"]))
     judge_check = ((rep.get("preflight") or {}).get("judge") or {}).get("verdict")
-    return verdict({"reward_classifier": harm, **({"judge": judge} if judge else {})}, judge_is_reward, judge_check)
+    return verdict({"reward_classifier": harm, **({"judge": judge} if judge else {})}, judge_is_reward(rep["config"]),
+                   judge_check)
 
 
 def varying_keys(runs: list[Run]) -> list[str]:
@@ -553,9 +551,8 @@ def compare_cli(paths: list[str], *, fmt: str, plot_dir: str | None, report: str
     if plots:
         print(f"plots: {', '.join(str(p) for p in plots)}", file=info)
     if report and Path(report).suffix.lower() in (".html", ".htm"):
-        from alignrun.html_report import write_comparison
-
-        write_comparison(Path(report), runs, cols, notes, rows, varying)
+        with tempfile.TemporaryDirectory() as tmp:  # the HTML embeds its own plots, whether or not --plot was given
+            write_comparison(Path(report), runs, cols, notes, write_plots(rows, varying, Path(tmp)))
         print(f"report: {report}", file=info)
     elif report:
         write_report_file(Path(report), cols, notes, plots)

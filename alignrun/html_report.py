@@ -285,16 +285,11 @@ def write_run_html(run_dir: Path) -> Path:
 # ---------------------------------------------------------------- a comparison
 
 def write_comparison(path: Path, runs: list[Any], cols: list[tuple[str, list[str]]], notes: list[str],
-                     rows: list[dict[str, Any]], varying: list[str]) -> None:
-    """`compare --report FILE.html`: the table, notes, each run's verdict and alarms, and the plots, embedded."""
-    import tempfile
-
-    from alignrun.compare import write_plots
-
+                     plots: list[Path]) -> None:
+    """`compare --report FILE.html`: the table, notes, each run's verdict and alarms, and the PNG plots embedded."""
     table = _table([t for t, _ in cols], ([_esc(cells[i]) for _, cells in cols] for i in range(len(cols[0][1]))))
-    with tempfile.TemporaryDirectory() as tmp:
-        plots = [_image("data:image/png;base64," + base64.b64encode(p.read_bytes()).decode("ascii"),
-                        p.stem.replace("_", " ")) for p in write_plots(rows, varying, Path(tmp))]
+    images = [_image("data:image/png;base64," + base64.b64encode(p.read_bytes()).decode("ascii"),
+                     p.stem.replace("_", " ")) for p in plots]
     per_run = []
     for run in runs:
         verdict = run.report.get("verdict")
@@ -303,6 +298,6 @@ def write_comparison(path: Path, runs: list[Any], cols: list[tuple[str, list[str
                        + _alarms(run.report.get("alarms")).replace("<h2>Alarms</h2>", ""))
     sections = ["<h1>Run comparison</h1>", f'<p class="meta">{len(runs)} runs, from their report.json files.</p>',
                 table, "<h2>Notes</h2><ul>" + "".join(f"<li>{_esc(n)}</li>" for n in notes) + "</ul>",
-                "<h2>Plots</h2>" + "".join(plots), "<h2>Verdicts and alarms per run</h2>" + "".join(per_run),
+                "<h2>Plots</h2>" + "".join(images), "<h2>Verdicts and alarms per run</h2>" + "".join(per_run),
                 _cautions(CAUTIONS)]
     write_text_atomic(path, _page("Run comparison", sections))

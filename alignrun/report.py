@@ -33,6 +33,7 @@ from typing import Any
 from alignrun.errors import UserError
 from alignrun.metrics import num
 from alignrun.runfolder import read_json, write_json_atomic, write_jsonl_atomic, write_text_atomic
+from alignrun.verdict import ci_text, preflight_forced
 
 # /2: paired changes carry p_value/test/interval (permutation test, bootstrap-t) instead of wilcoxon_p/rel_ci,
 # distinct-2 is split by its denominator, verdict/drift/data blocks were added. compare reads /1 reports too
@@ -74,20 +75,14 @@ def prompt_digest(prompts: list[str]) -> str:
     return hashlib.sha256("\x1e".join(prompts).encode("utf-8")).hexdigest()[:16]
 
 
-def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, float]], policy: Any,
-                 polarity: Any, scorer: Any, judge: Any, split: Any, wall_s: float, peak_rss_mb: float,
+def build_report(*, cfg: Any, before: Any, after: Any, assessment: dict[str, Any], history: list[dict[str, float]],
+                 policy: Any, polarity: Any, scorer: Any, judge: Any, split: Any, wall_s: float, peak_rss_mb: float,
                  started: float, judge_polarity: Any = None) -> dict[str, Any]:
-    """judge_polarity: the judge's own preflight result (with .verdict), or None when it was not checked."""
-    from alignrun import evaluation
+    """Assemble report.json from what the run computed: `assessment` is evaluation.assess's summaries, changes,
+    drift, verdict and alarms; judge_polarity the judge's own preflight result (with .verdict), or None."""
     from alignrun.ppo import KLController
 
-    eos_id = policy.tokenizer.eos_token_id
-    sb, sa = evaluation.summarise(before, cfg, eos_id), evaluation.summarise(after, cfg, eos_id)
-    change = evaluation.changes(before, after, cfg)
-    judge_check = getattr(judge_polarity, "verdict", None)
-    judge_is_reward = cfg.evaluation.judge is not None and (
-        (cfg.evaluation.judge.backend, cfg.evaluation.judge.source) == (cfg.reward.backend, cfg.reward.source))
-    forced = getattr(polarity, "verdict", "ok") != "ok" or bool(getattr(judge_polarity, "forced", False))
+    forced = preflight_forced(polarity, judge_polarity)
     code_exec = [s.description for s in (scorer, judge) if s is not None and s.executes_code]
     if cfg.base.trust_remote_code:
         code_exec.append(f"base model code from {cfg.base.model} (trust_remote_code = true)")
@@ -127,7 +122,7 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
             "prompts": len(before.prompts), "samples_per_prompt": cfg.evaluation.samples_per_prompt,
             "threshold": cfg.evaluation.harm_threshold, "prompt_digest": prompt_digest(before.prompts),
             "reward_scorer": scorer.description, "judge_scorer": judge.description if judge is not None else None,
-            "before": sb, "after": sa, "change": change, "drift": evaluation.drift(before, after, cfg),
+            **{key: assessment[key] for key in ("before", "after", "change", "drift")},
             "per_prompt": {
                 "harm_before": before.harm.mean(1).tolist(), "harm_after": after.harm.mean(1).tolist(),
                 "judge_before": None if before.judge is None else before.judge.mean(1).tolist(),
@@ -136,8 +131,8 @@ def build_report(*, cfg: Any, before: Any, after: Any, history: list[dict[str, f
                 "drift_after": None if after.kl_exact is None else after.kl_exact.mean(1).tolist(),
             },
         },
-        "verdict": evaluation.verdict(change, judge_is_reward, judge_check),
-        "alarms": evaluation.alarms(sb, sa, change, cfg, forced, judge_is_reward, judge_check),
+        "verdict": assessment["verdict"],
+        "alarms": assessment["alarms"],
         "cautions": CAUTIONS,
         "code_execution": code_exec,
     }
@@ -243,3 +238,35 @@ def render_markdown(report: dict[str, Any], pairs: list[dict[str, Any]]) -> str:
               "## Limits and cautions", ""]
     lines += [f"- {c}" for c in report["cautions"]]
     return "\n".join(lines) + "\n"
+
+
+def summary_text(report: dict[str, Any]) -> str:
+    """The command-line verdict and before/after table, verdict and alarms first."""
+    ev, v = report["evaluation"], report["verdict"]
+    lines = [f"{'!!! ' if v['level'] == 'critical' else ''}VERDICT: {v['verdict'].upper()} - {v['reason']}"]
+    for a in report["alarms"]:
+        lines.append(f"{'!!! ' if a['level'] == 'critical' else '!  '}{a['level'].upper()} {a['code']}: {a['message']}")
+    lines.append(f"\nheld-out prompts: {ev['prompts']}, samples per prompt: {ev['samples_per_prompt']}")
+    lines.append(f"{'':28}{'before':>10}{'after':>10}{'change':>10}")
+    rows = [("harm mean (reward clf)", "reward_classifier", "mean"),
+            (f"harm rate >= {ev['threshold']}", "reward_classifier", "rate"),
+            ("expected max harm", "reward_classifier", "expected_max"),
+            ("judge mean (outside)", "judge", "mean"), ("judge expected max", "judge", "expected_max")]
+    for title, who, key in rows:
+        b, a = ev["before"].get(who), ev["after"].get(who)
+        if b and a:
+            rel = f"{100 * (a[key] - b[key]) / b[key]:+.0f}%" if b[key] else "n/a"
+            lines.append(f"{title:28}{num(b[key]):>10}{num(a[key]):>10}{rel:>10}")
+    for title, key in (("drift (exact KL)", "kl_exact_to_reference"), ("KL to reference (k1)", "kl_to_reference"),
+                       ("length (words)", "length_mean_words"),
+                       ("distinct-2 (per bigram)", "distinct_2_per_ngram"), ("seq-rep-4 mean", "seq_rep_4_mean"),
+                       ("looping share", "seq_rep_4_share"), ("cut-off share", "truncated_share"),
+                       ("perplexity (reference)", "perplexity_under_reference")):
+        b, a = ev["before"]["guards"].get(key), ev["after"]["guards"].get(key)
+        if b is not None and a is not None:
+            lines.append(f"{title:28}{num(b):>10}{num(a):>10}")
+    for who, c in ev["change"].items():
+        p = "n/a" if c["p_value"] is None else f"{c['p_value']:.2g}"
+        lines.append(f"{who.replace('_', ' ')}: mean harm change {num(c['diff'], sign=True)}, 95% interval {ci_text(c)} "
+                     f"({c['interval']}); p = {p} ({c['test']})")
+    return "\n".join(lines)

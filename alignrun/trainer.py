@@ -45,7 +45,7 @@ from alignrun.models import (
     set_threads,
 )
 from alignrun.preflight import require_polarity
-from alignrun.report import build_report, load_report, write_report
+from alignrun.report import build_report, load_report, summary_text, write_report
 from alignrun.reward import load_scorer, reward_from_scores
 from alignrun.rollout import Rollout, rollout
 from alignrun.runfolder import (
@@ -364,7 +364,9 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                                "after", accelerator, fresh=True)
         report: dict[str, Any] = {}
         if main:
-            report = build_report(cfg=cfg, before=before, after=after, history=history, policy=policy,
+            assessment = evaluation.assess(before, after, cfg, policy.tokenizer.eos_token_id, polarity, judge_polarity)
+            report = build_report(cfg=cfg, before=before, after=after, assessment=assessment, history=history,
+                                  policy=policy,
                                   polarity=polarity, scorer=scorer, judge=judge, split=split,
                                   wall_s=time.time() - started, peak_rss_mb=peak_rss_mb(), started=started,
                                   judge_polarity=judge_polarity)
@@ -478,7 +480,7 @@ def run_from_cli(config_path: str, overrides: list[str], *, out: str | None, res
     target = Path(out or cfg.run.out or Path("runs") / cfg.run.name)
     report = run_experiment(cfg, target, resume=bool(resume), force=force, quiet=quiet, overwrite=overwrite)
     if report:
-        print(evaluation.summary_text(report))
+        print(summary_text(report))
         print(f"\nrun folder: {target}")
     _teardown()
     return 0

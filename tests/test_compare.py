@@ -67,11 +67,15 @@ def make_run(folder: Path, *, effect: float, drift: float, overrides: dict | Non
                          drift + rng.normal(0, 0.01, size=(n, k)), rng)
     history = [{"reward_mean": -0.4 + 0.01 * s, "kl_mean": drift * s / 4, "beta": cfg.kl.coef} for s in range(1, 5)]
     tool = SimpleNamespace(description="synthetic scorer", executes_code=False)
+    from alignrun.evaluation import assess
+
+    polarity = SimpleNamespace(verdict="ok", auroc=0.95, reward_auroc=0.95)
     report = build_report(
         cfg=cfg, before=before, after=after, history=history,
+        assessment=assess(before, after, cfg, 1, polarity, judge_polarity),
         policy=SimpleNamespace(trainable_params=1000 * cfg.lora.rank, total_params=1_000_000,
                                tokenizer=SimpleNamespace(eos_token_id=1)),
-        polarity=SimpleNamespace(verdict="ok", auroc=0.95, reward_auroc=0.95), scorer=tool,
+        polarity=polarity, scorer=tool,
         judge=tool if with_judge else None, split=SimpleNamespace(train=prompts, skipped=[]),
         wall_s=float(rng.uniform(30, 90)), peak_rss_mb=float(rng.uniform(400, 900)), started=0.0,
         judge_polarity=judge_polarity)
@@ -138,8 +142,7 @@ def test_judge_disagreement_is_shown(tmp_path: Path, capsys: pytest.CaptureFixtu
 
 def test_one_verdict_everywhere(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     # computed once in build_report; the CLI summary, report.md and compare show that same verdict
-    from alignrun.evaluation import summary_text
-    from alignrun.report import render_markdown
+    from alignrun.report import render_markdown, summary_text
 
     for name, judge_effect, expected in (("good", None, "improved"), ("worse", -0.3, "worse"),
                                          ("open", 0.007, "not shown")):
@@ -179,7 +182,7 @@ def test_the_judges_own_check_reaches_verdict_and_alarms(tmp_path: Path, capsys:
 
 def test_compare_reads_the_stored_verdict_and_recomputes_it_for_older_reports(tmp_path: Path,
                                                                              capsys: pytest.CaptureFixture) -> None:
-    from alignrun.evaluation import verdict
+    from alignrun.verdict import verdict
 
     report = make_run(tmp_path / "a", effect=0.3, drift=0.2)
     report["verdict"] = {"verdict": "not shown", "level": "info", "reason": "stored reason"}

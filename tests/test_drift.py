@@ -19,7 +19,15 @@ from transformers import AutoModelForSeq2SeqLM
 
 from alignrun import compare, metrics
 from alignrun.config import BaseSection, Experiment, LoraSection, ReferenceSection, with_overrides
-from alignrun.evaluation import EvalResult, drift, evaluate_policy, read_samples, summarise, write_samples
+from alignrun.evaluation import (
+    EvalResult,
+    assess,
+    drift,
+    evaluate_policy,
+    read_samples,
+    summarise,
+    write_samples,
+)
 from alignrun.models import build_policy
 from alignrun.report import build_report, render_markdown
 from alignrun.runfolder import RunFolder, write_json_atomic
@@ -184,10 +192,12 @@ def _report(folder: Path, *, reduction: float, drift_after: float, spread: float
     after = _result(rng, n, k, harm_after, kl_after if exact else None)
     history = [{"reward_mean": -0.4, "kl_mean": drift_after, "beta": cfg.kl.coef}]
     tool = SimpleNamespace(description="synthetic scorer", executes_code=False)
+    polarity = SimpleNamespace(verdict="ok", auroc=0.95, reward_auroc=0.95)
     report = build_report(
         cfg=cfg, before=before, after=after, history=history,
+        assessment=assess(before, after, cfg, 1, polarity, None),
         policy=SimpleNamespace(trainable_params=1000, total_params=1_000_000, tokenizer=SimpleNamespace(eos_token_id=1)),
-        polarity=SimpleNamespace(verdict="ok", auroc=0.95, reward_auroc=0.95), scorer=tool, judge=None,
+        polarity=polarity, scorer=tool, judge=None,
         split=SimpleNamespace(train=before.prompts, skipped=[]), wall_s=1.0, peak_rss_mb=1.0, started=0.0)
     write_json_atomic(folder / "report.json", report)
     RunFolder(folder).set_status("finished", step=1)

@@ -11,10 +11,11 @@ import torch
 from transformers import AutoModelForSeq2SeqLM
 
 from alignrun.config import BaseSection, Experiment, LoraSection, ReferenceSection
-from alignrun.evaluation import EvalResult, alarms, evaluate_policy, summarise, verdict
+from alignrun.evaluation import EvalResult, evaluate_policy, summarise
 from alignrun.metrics import num
 from alignrun.models import build_policy, export_merged, save_adapter
 from alignrun.runfolder import write_text_atomic
+from alignrun.verdict import alarms, verdict
 
 
 def _cfg(target: float | None = 2.0, **evaluation: float) -> Experiment:

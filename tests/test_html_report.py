@@ -101,7 +101,7 @@ def test_compare_html_report_embeds_plots_and_each_runs_alarms(tmp_path: Path, c
         folder = tmp_path / name
         folder.mkdir()
         report = make_run(folder, effect=effect, drift=1.5 * effect, overrides={"kl.coef": coef})
-        if name == "large-step":  # an alarm as evaluation.alarms writes it
+        if name == "large-step":  # an alarm as verdict.alarms writes it
             report["alarms"] = [{"level": "warning", "code": "fluency-drop", "message": "perplexity rose by 40%"}]
             write_json_atomic(folder / "report.json", report)
         folders.append(str(folder))

@@ -16,7 +16,7 @@ QUICK = ["ppo.steps=32", "evaluation.max_prompts=40", "evaluation.samples_per_pr
 def run_demo(out: str | None, quick: bool, quiet: bool, overrides: list[str], overwrite: bool = False) -> int:
     from alignrun.config import load_config
     from alignrun.demo.build import build_demo
-    from alignrun.evaluation import summary_text
+    from alignrun.report import summary_text
     from alignrun.runfolder import check_run_folder
     from alignrun.trainer import run_experiment
 
