@@ -6,9 +6,11 @@ when it is loaded), so the command line calls it first thing.
 
 from __future__ import annotations
 
+import contextlib
 import math
 import os
-from collections.abc import MutableMapping
+import tempfile
+from collections.abc import Iterator, MutableMapping
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -123,7 +125,35 @@ def worker_shares(cpus: list[int], workers: int) -> list[list[int]]:
     return shares
 
 
-def pin(cpus: list[int]) -> None:
-    """Restrict this process (threads started from now on) to `cpus`, where the OS supports masks."""
-    if hasattr(os, "sched_setaffinity"):
-        os.sched_setaffinity(0, cpus)
+def pin(cpus: list[int], running_threads: bool = False) -> None:
+    """Restrict this process to `cpus` where the OS supports masks: threads started from now on, and with
+    `running_threads` also those already running (a reused worker process whose OpenMP threads exist)."""
+    if not hasattr(os, "sched_setaffinity"):
+        return
+    tasks = Path("/proc/self/task")
+    for tid in ([int(t) for t in os.listdir(tasks)] if running_threads and tasks.is_dir() else []):
+        with contextlib.suppress(OSError):  # a thread that ended meanwhile
+            os.sched_setaffinity(tid, cpus)
+    os.sched_setaffinity(0, cpus)
+
+
+@contextlib.contextmanager
+def claimed_share(shares: list[list[int]], key: str) -> Iterator[list[int] | None]:
+    """The first share no other process on this machine holds for `key` (a lock file per share in the temporary
+    folder, released when the block ends or the process dies); None when every share is taken."""
+    import fcntl  # POSIX only; the command line imports this module everywhere
+
+    folder = Path(tempfile.gettempdir())
+    for i, cpus in enumerate(shares):
+        handle = open(folder / f"alignrun-{key}-share-{i}.lock", "w")  # held until the block ends
+        try:
+            fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            handle.close()
+            continue
+        try:
+            yield cpus
+        finally:
+            handle.close()
+        return
+    yield None

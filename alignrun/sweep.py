@@ -273,6 +273,16 @@ def _outcome(future: Future) -> dict[str, Any]:
         return _failed(f"worker process failed: {type(exc).__name__}: {exc}")
 
 
+def _pinned_trial(runner: TrialRunner, shares: list[list[int]], key: str, config: dict[str, Any], folder: str,
+                  resume: bool, quiet: bool) -> dict[str, Any]:
+    """A Ray task: the trial on a share of the CPUs no other trial of this sweep holds (Ray reuses worker
+    processes, so threads already running are moved too)."""
+    with cpu.claimed_share(shares, key) as cpus:
+        if cpus is not None:
+            cpu.pin(cpus, running_threads=True)
+        return runner(config, folder, resume, quiet)
+
+
 def _run_ray(jobs: list[Job], runner: TrialRunner, workers: int, address: str | None, quiet: bool,
              done: Callable[[Job, dict], None]) -> None:
     """One Ray task per trial, asking for as many CPUs as the trial uses threads (a node's CPUs / workers)."""
@@ -290,14 +300,17 @@ def _run_ray(jobs: list[Job], runner: TrialRunner, workers: int, address: str | 
         if not any(node_cpus):
             raise UserError(f"ray cluster {address or '(local)'} has no CPUs to run trials on")
         share, largest = max(1, min(c for c in node_cpus if c) // workers), max(node_cpus)
-        task = ray.remote(runner)
+        task = ray.remote(_pinned_trial)
+        # a local cluster's trials share this machine: each task takes a free share of its CPUs (disjoint masks)
+        shares = [] if address else cpu.worker_shares(cpu.affinity_cpus(), workers)
+        key = f"sweep-{os.getpid()}"
         # Ray starts its worker processes itself: they get the command's OpenMP waiting policy from the start
         waiting = {"env_vars": {"OMP_WAIT_POLICY": os.environ.get("OMP_WAIT_POLICY", "PASSIVE")}}
         pending = {}
         for job in jobs:
             cfg = _with_threads(job.trial.config, min(job.trial.config.base.threads or share, largest))
             ref = task.options(num_cpus=cfg.base.threads, runtime_env=waiting).remote(
-                cfg.model_dump(mode="json"), str(job.folder), job.resume, quiet)
+                runner, shares, key, cfg.model_dump(mode="json"), str(job.folder), job.resume, quiet)
             pending[ref] = job
         while pending:
             ready, _ = ray.wait(list(pending), num_returns=1)

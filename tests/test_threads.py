@@ -119,3 +119,29 @@ def test_command_line_sets_the_waiting_policy_before_torch_loads(tmp_path: Path,
                           timeout=300)
     assert done.returncode == 0, done.stderr
     assert done.stdout.strip().splitlines()[-1] == f"torch loaded before main: False policy: {expected}"
+
+
+def test_each_claim_gets_a_share_no_other_holds(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr("tempfile.tempdir", str(tmp_path))  # the lock files go here
+    shares = [[0], [1]]
+    with cpu.claimed_share(shares, "t") as first, cpu.claimed_share(shares, "t") as second:
+        assert (first, second) == ([0], [1])
+        with cpu.claimed_share(shares, "t") as third:
+            assert third is None  # every share is held
+        with cpu.claimed_share(shares, "other-sweep") as other:
+            assert other == [0]  # another key has shares of its own
+    with cpu.claimed_share(shares, "t") as again:
+        assert again == [0]  # released at the end of the block
+
+
+def test_ray_tasks_run_the_trial_on_a_claimed_share(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from alignrun import sweep
+
+    monkeypatch.setattr("tempfile.tempdir", str(tmp_path))
+    pinned: list[tuple[list[int], bool]] = []
+    monkeypatch.setattr(cpu, "pin", lambda cpus, running_threads=False: pinned.append((cpus, running_threads)))
+    with cpu.claimed_share([[0], [1]], "k"):  # another trial holds the first share
+        result = sweep._pinned_trial(lambda *args: {"state": "finished", "args": args}, [[0], [1]], "k",
+                                     {"a": 1}, "folder", False, True)
+    assert result == {"state": "finished", "args": ({"a": 1}, "folder", False, True)}
+    assert pinned == [([1], True)]  # threads already running in a reused Ray worker are moved too
