@@ -293,9 +293,27 @@ def fast_settings() -> dict[str, bool | str]:
     """
     flags = cpu_flags()
     capability = torch.backends.cpu.get_cpu_capability()
-    bf16 = bool(flags & {"avx512_bf16", "amx_bf16"}) and "AVX512" in capability
+    bf16 = native_bf16(flags, capability)
     return {"cpu_capability": capability, "bf16": bf16, "amx": "amx_bf16" in flags,
             "int8_dynamic": _int8_dynamic_works(), "recommended_precision": "bf16" if bf16 else "fp32"}
+
+
+def native_bf16(flags: set[str] | None = None, capability: str | None = None) -> bool:
+    """bf16 dot products in hardware (avx512_bf16 or amx_bf16) and torch using its AVX-512 kernels; otherwise
+    torch emulates bf16 and autocast is slower than fp32 (ATEN_CPU_CAPABILITY=avx2 simulates such a CPU)."""
+    flags = cpu_flags() if flags is None else flags
+    capability = torch.backends.cpu.get_cpu_capability() if capability is None else capability
+    return bool(flags & {"avx512_bf16", "amx_bf16"}) and "AVX512" in capability
+
+
+def emulated_bf16_warning(precision: str, device: str = "cpu", native: bool | None = None) -> str | None:
+    """The warning `alignrun check` and `alignrun run` both print for bf16 on a CPU without native bf16."""
+    on_gpu = device == "cuda" or device == "auto" and torch.cuda.is_available()
+    if precision != "bf16" or on_gpu or (native_bf16() if native is None else native):
+        return None
+    return (f"base.precision = \"bf16\" on a CPU without native bf16 (no avx512_bf16/amx_bf16, or torch not using "
+            f"AVX-512: cpu {torch.backends.cpu.get_cpu_capability()}): torch emulates bf16, so steps are several times "
+            "slower than in fp32; use base.precision = \"fp32\" here")
 
 
 def describe(est: Estimate) -> list[str]:

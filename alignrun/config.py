@@ -38,7 +38,8 @@ class BaseSection(Section):
     revision: str | None = Field(None, description="hub revision (branch, tag or commit)")
     trust_remote_code: bool = Field(False, description="run model code shipped with the weights (code execution)")
     device: Literal["auto", "cpu", "cuda"] = Field("auto", description="auto uses a GPU only when one is present")
-    threads: int = Field(0, ge=0, le=1024, description="CPU threads; 0 means all cores")
+    threads: int = Field(0, ge=0, le=1024, description="CPU threads; 0 means OMP_NUM_THREADS if set, else the "
+                         "CPUs this process may use (affinity mask, cgroup CPU quota)")
     precision: Literal["fp32", "bf16"] = Field(
         "fp32", description="compute precision; bf16 = autocast plus frozen linear weights stored in bf16 (CPUs with "
         "avx512_bf16/AMX, or a GPU)")

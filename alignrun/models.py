@@ -31,6 +31,7 @@ from transformers.modeling_outputs import BaseModelOutput
 from trl.trainer.utils import disable_dropout_in_model
 
 from alignrun.config import BaseSection, LoraSection, ReferenceSection
+from alignrun.cpu import ThreadChoice, choose_threads
 from alignrun.errors import UserError
 from alignrun.runfolder import inside, replace_folder, staging_folder
 
@@ -56,11 +57,11 @@ def pick_device(section: BaseSection) -> torch.device:
     return torch.device("cuda" if section.device != "cpu" and torch.cuda.is_available() else "cpu")
 
 
-def set_threads(threads: int) -> int:
-    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-    n = threads or cores
-    torch.set_num_threads(n)
-    return n
+def set_threads(threads: int) -> ThreadChoice:
+    """torch's thread count: base.threads, else what the user set, else the CPUs this process may use."""
+    choice = choose_threads(threads)
+    torch.set_num_threads(choice.threads)
+    return choice
 
 
 def autocast(precision: str, device: torch.device) -> torch.autocast | nullcontext[None]:

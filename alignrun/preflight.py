@@ -29,7 +29,7 @@ from pathlib import Path
 import numpy as np
 from scipy.stats import rankdata
 
-from alignrun.budget import describe, describe_fast_settings, estimate, fast_settings
+from alignrun.budget import describe, describe_fast_settings, emulated_bf16_warning, estimate, fast_settings
 from alignrun.config import RewardSection, ScorerSection, load_config
 from alignrun.errors import UserError
 from alignrun.reward import Scorer, describe_transform, load_scorer, reward_from_scores
@@ -475,6 +475,9 @@ def run_check(config_path: str | Path, overrides: Sequence[str], out: str | Path
     except UserError as exc:  # e.g. a base model not available here: the polarity verdict still stands
         lines = [f"resources: not estimated: {exc}"]
     lines.append(describe_fast_settings(fast_settings(), cfg.base.precision, params))
+    emulated = emulated_bf16_warning(cfg.base.precision, cfg.base.device)
+    if emulated:
+        lines.append(f"!! {emulated}")
     print("\n".join(lines))
     if out is not None:
         print(f"wrote {write_preflight(report, judged, out)}")

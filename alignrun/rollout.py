@@ -92,16 +92,17 @@ def sample(policy: Policy, prompt_ids: torch.Tensor, prompt_mask: torch.Tensor, 
     with decoder_states(policy.lm) as states:
         out = policy.lm.generate(input_ids=prompt_ids, attention_mask=prompt_mask,
                                  generation_config=generation_settings(policy, max_new_tokens, do_sample), **reuse)
-    if not all(torch.equal(raw, used) for raw, used in zip(out.logits, out.scores, strict=True)):
+    if not all(raw is used or torch.equal(raw, used) for raw, used in zip(out.logits, out.scores, strict=True)):
         raise UserError(f"base.model: generating with {policy.lm.config.name_or_path} changed the model's "
                         "distribution (a logits processor was active), so the stored log-probs would not be those of "
                         "the sampled tokens; alignrun needs a model whose generate() honours its generation_config")
     sequences = out.sequences  # [B, 1 + T], starting with the decoder start token
-    logits = torch.stack(out.logits, dim=1).float()  # [B, T, V] raw logits at each sampled position
-    logp = selective_log_softmax(logits, sequences[:, 1:])
+    # log-softmax at the sampled token, z_a - logsumexp(z), step by step from the raw logits: no [B, T, V] copy
+    logp = torch.stack([step.float().gather(1, token[:, None]).squeeze(1) - torch.logsumexp(step.float(), dim=-1)
+                        for step, token in zip(out.logits, sequences[:, 1:].T, strict=True)], dim=1)
     values = None
     if with_values:
-        hidden = torch.cat(states[: logits.shape[1]], dim=1)  # [B, T, H] the decoder's last layer, step by step
+        hidden = torch.cat(states[: len(out.logits)], dim=1)  # [B, T, H] the decoder's last layer, step by step
         values = policy.net.value_head(hidden).float()
     return sequences, logp, values
 

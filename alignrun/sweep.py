@@ -28,6 +28,7 @@ from typing import Any, get_args
 
 from pydantic import BaseModel
 
+from alignrun import cpu
 from alignrun.config import Experiment, flatten, load_config, with_overrides
 from alignrun.errors import UserError
 from alignrun.report import load_report
@@ -229,10 +230,6 @@ def _record(trial: Trial, state: str, error: str | None = None, wall_s: float | 
 
 # ---------------------------------------------------------------- executors
 
-def _cores() -> int:
-    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
-
-
 def _with_threads(cfg: Experiment, share: int) -> Experiment:
     """Divide the cores: a trial never asks for more than its share (an explicit smaller value is kept)."""
     threads = share if cfg.base.threads == 0 else min(cfg.base.threads, share)
@@ -244,10 +241,21 @@ def _run_sequential(jobs: list[Job], runner: TrialRunner, quiet: bool, done: Cal
         done(job, runner(job.trial.config.model_dump(mode="json"), str(job.folder), job.resume, quiet))
 
 
+def _take_share(shares: Any) -> None:
+    """Pool worker start-up (before torch loads): keep to one share of the CPUs, never another worker's."""
+    cpu.pin(shares.get())
+
+
 def _run_pool(jobs: list[Job], runner: TrialRunner, workers: int, done: Callable[[Job, dict], None]) -> None:
-    """`workers` trials at once in fresh ("spawn") processes, each with its share of the cores."""
-    share = max(1, _cores() // workers)
-    with ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn")) as pool:
+    """`workers` trials at once in fresh ("spawn") processes, each pinned to its own disjoint share of the CPUs
+    (affinity mask) with as many threads as its share of the CPU quota."""
+    share = max(1, cpu.choose_threads().threads // workers)
+    context = multiprocessing.get_context("spawn")
+    shares = context.Queue()
+    for cpus in cpu.worker_shares(cpu.affinity_cpus(), workers):  # one per worker process, taken at its start
+        shares.put(cpus)
+    with ProcessPoolExecutor(max_workers=workers, mp_context=context, initializer=_take_share,
+                             initargs=(shares,)) as pool:
         futures = {pool.submit(runner, _with_threads(job.trial.config, share).model_dump(mode="json"),
                                str(job.folder), job.resume, True): job for job in jobs}
         try:
@@ -263,6 +271,16 @@ def _outcome(future: Future) -> dict[str, Any]:
         return future.result()
     except Exception as exc:  # the worker process itself died
         return _failed(f"worker process failed: {type(exc).__name__}: {exc}")
+
+
+def _pinned_trial(runner: TrialRunner, shares: list[list[int]], key: str, config: dict[str, Any], folder: str,
+                  resume: bool, quiet: bool) -> dict[str, Any]:
+    """A Ray task: the trial on a share of the CPUs no other trial of this sweep holds (Ray reuses worker
+    processes, so threads already running are moved too)."""
+    with cpu.claimed_share(shares, key) as cpus:
+        if cpus is not None:
+            cpu.pin(cpus, running_threads=True)
+        return runner(config, folder, resume, quiet)
 
 
 def _run_ray(jobs: list[Job], runner: TrialRunner, workers: int, address: str | None, quiet: bool,
@@ -282,12 +300,17 @@ def _run_ray(jobs: list[Job], runner: TrialRunner, workers: int, address: str | 
         if not any(node_cpus):
             raise UserError(f"ray cluster {address or '(local)'} has no CPUs to run trials on")
         share, largest = max(1, min(c for c in node_cpus if c) // workers), max(node_cpus)
-        task = ray.remote(runner)
+        task = ray.remote(_pinned_trial)
+        # a local cluster's trials share this machine: each task takes a free share of its CPUs (disjoint masks)
+        shares = [] if address else cpu.worker_shares(cpu.affinity_cpus(), workers)
+        key = f"sweep-{os.getpid()}"
+        # Ray starts its worker processes itself: they get the command's OpenMP waiting policy from the start
+        waiting = {"env_vars": {"OMP_WAIT_POLICY": os.environ.get("OMP_WAIT_POLICY", "PASSIVE")}}
         pending = {}
         for job in jobs:
             cfg = _with_threads(job.trial.config, min(job.trial.config.base.threads or share, largest))
-            ref = task.options(num_cpus=cfg.base.threads).remote(cfg.model_dump(mode="json"), str(job.folder),
-                                                                  job.resume, quiet)
+            ref = task.options(num_cpus=cfg.base.threads, runtime_env=waiting).remote(
+                runner, shares, key, cfg.model_dump(mode="json"), str(job.folder), job.resume, quiet)
             pending[ref] = job
         while pending:
             ready, _ = ray.wait(list(pending), num_returns=1)

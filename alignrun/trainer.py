@@ -5,6 +5,7 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import json
+import os
 import platform
 import random
 import resource
@@ -21,6 +22,7 @@ from accelerate import Accelerator
 from trl.trainer.utils import entropy_from_logits, selective_log_softmax
 
 from alignrun import console, evaluation, html_report, ppo, tracking
+from alignrun.budget import emulated_bf16_warning
 from alignrun.checkpoint import (
     checkpoint_step,
     load_checkpoint,
@@ -32,6 +34,7 @@ from alignrun.checkpoint import (
     truncate_metrics,
 )
 from alignrun.config import Experiment, load_config, result_differences, to_toml
+from alignrun.cpu import ThreadChoice
 from alignrun.data import load_prompts
 from alignrun.errors import UserError
 from alignrun.inputs import check_inputs
@@ -223,13 +226,15 @@ def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Opti
 
 # ---------------------------------------------------------------- the run
 
-def environment(cfg: Experiment, threads: int, device: torch.device, accelerator: Accelerator) -> dict[str, Any]:
+def environment(cfg: Experiment, threads: ThreadChoice, device: torch.device, accelerator: Accelerator
+                ) -> dict[str, Any]:
     import peft
     import transformers
 
     return {
         "python": platform.python_version(), "platform": platform.platform(), "torch": torch.__version__,
-        "transformers": transformers.__version__, "peft": peft.__version__, "threads": threads,
+        "transformers": transformers.__version__, "peft": peft.__version__, "threads": threads.threads,
+        "threads_reason": threads.reason, "omp_wait_policy": os.environ.get("OMP_WAIT_POLICY", "(unset)"),
         "device": str(device), "processes": accelerator.num_processes, "seed": cfg.run.seed,
         "command": " ".join(sys.argv), "precision": cfg.base.precision,
     }
@@ -280,6 +285,9 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                                      "no checkpoint, so training restarts from step 0"), flush=True)
     try:
         if main:
+            emulated = emulated_bf16_warning(cfg.base.precision, device.type)
+            if emulated:
+                print(f"warning: {emulated}", flush=True)
             folder.set_status("running", step=step)
             write_text_atomic(out / "config.toml", to_toml(cfg))
             write_json_atomic(out / "environment.json", environment(cfg, threads, device, accelerator))

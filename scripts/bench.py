@@ -26,18 +26,18 @@ subprocesses run side by side, which changes their speed, not their peaks):
 by default ours, naive and ours-bf16 (the floor tracks ours within ~5%).
 All variants generate exactly 32 tokens: the saved generation config sets min_new_tokens, and every
 variant calls the same generate.
+
+Threads and OpenMP's waiting policy are those `alignrun run` would choose (scripts/_bench_common.py). Where
+the CPU only emulates bf16 the bf16 variants are skipped (--emulated-bf16 times them), and a shape whose
+predicted time would end the run after --budget-s (540 s) is skipped; both are said in the output and JSON.
 """
 
 from __future__ import annotations
 
 import argparse
 import gc
-import itertools
 import json
 import os
-import platform
-import random
-import resource
 import shutil
 import subprocess
 import sys
@@ -50,101 +50,31 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
-os.environ.setdefault("HF_HUB_OFFLINE", "1")
-os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
-os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
-sys.path.insert(1, str(Path(__file__).resolve().parent.parent))  # alignrun, when it is not installed
-
-import torch  # noqa: E402
-from accelerate import Accelerator  # noqa: E402
-from tokenizers import Tokenizer, models, pre_tokenizers, processors  # noqa: E402
-from transformers import (  # noqa: E402
-    GenerationConfig,
-    PreTrainedTokenizerFast,
-    T5Config,
-    T5ForConditionalGeneration,
+import _bench_common as common  # first: offline settings and alignrun's start-up thread settings
+import torch
+from _bench_common import (
+    NEW_TOKENS,
+    PROMPT_TOKENS,
+    PROMPTS,
+    SHAPES,
+    bench_prompts,
+    build_model,
+    model_vocab,
+    ratio,
 )
-from trl.trainer.utils import selective_log_softmax  # noqa: E402
+from accelerate import Accelerator
+from trl.trainer.utils import selective_log_softmax
 
-from alignrun import budget, ppo, rollout, trainer  # noqa: E402
-from alignrun.config import Experiment  # noqa: E402
-from alignrun.models import Policy, autocast, build_policy, set_threads  # noqa: E402
-from alignrun.reward import load_scorer, reward_from_scores  # noqa: E402
+from alignrun import budget, ppo, rollout, trainer
+from alignrun.config import Experiment
+from alignrun.models import Policy, autocast, build_policy
+from alignrun.reward import load_scorer, reward_from_scores
 
-PAD_ID, EOS_ID, UNK_ID = 0, 1, 2
-PROMPTS, PROMPT_TOKENS, NEW_TOKENS, MINIBATCH, EPOCHS, RANK = 16, 64, 32, 8, 4, 8
+MINIBATCH, EPOCHS, RANK = 8, 4, 8
 VARIANTS = ("ours", "floor", "naive", "ours-bf16", "ours-ed", "floor-ed", "naive-ed")
 PAIRED = {"floor": "ours", "floor-ed": "ours-ed"}  # the floor runs on its own variant's policy
 PARTS = ("generate", "old_logp", "reference", "reward", "update", "other")
 CPU = torch.device("cpu")
-
-
-@dataclass(frozen=True)
-class Shape:
-    d_model: int
-    heads: int
-    d_kv: int
-    d_ff: int
-    layers: int
-    vocab: int
-
-
-SHAPES = {
-    "tiny": Shape(d_model=128, heads=4, d_kv=32, d_ff=512, layers=2, vocab=8000),  # 2.0M parameters
-    "small": Shape(d_model=512, heads=8, d_kv=64, d_ff=2048, layers=6, vocab=32128),  # T5-small-shaped, 60.5M
-    "base": Shape(d_model=768, heads=12, d_kv=64, d_ff=3072, layers=12, vocab=32128),  # T5-base-shaped, 223M
-}
-
-
-def length_harm(texts: list[str]) -> list[float]:
-    """The bench's reward backend (reward.source = "bench:length_harm"): constant time per text, in [0, 1]."""
-    return [(len(t) % 10) / 10 for t in texts]
-
-
-# ---------------------------------------------------------------------------------------- models and data
-
-
-def invented_words(n: int, seed: int = 0) -> list[str]:
-    """n distinct pronounceable non-words (three consonant-vowel syllables), shuffled by seed."""
-    syllables = [c + v for c in "bdfgklmnprstvz" for v in "aeiou"]
-    words = ["".join(p) for p in itertools.islice(itertools.product(syllables, repeat=3), n)]
-    random.Random(seed).shuffle(words)
-    return words
-
-
-def build_model(shape: Shape, out: Path) -> Path:
-    """A random T5 of the given shape with a WordLevel tokenizer whose vocabulary fills the embedding."""
-    vocab = {"<pad>": PAD_ID, "</s>": EOS_ID, "<unk>": UNK_ID}
-    vocab.update({w: i + 3 for i, w in enumerate(invented_words(shape.vocab - 3))})
-    tok = Tokenizer(models.WordLevel(vocab, unk_token="<unk>"))
-    tok.pre_tokenizer = pre_tokenizers.WhitespaceSplit()
-    tok.post_processor = processors.TemplateProcessing(single="$A </s>", special_tokens=[("</s>", EOS_ID)])
-    tokenizer = PreTrainedTokenizerFast(tokenizer_object=tok, pad_token="<pad>", eos_token="</s>",
-                                        unk_token="<unk>", model_max_length=512, padding_side="right")
-    config = T5Config(vocab_size=shape.vocab, d_model=shape.d_model, d_kv=shape.d_kv, num_heads=shape.heads,
-                      d_ff=shape.d_ff, num_layers=shape.layers, num_decoder_layers=shape.layers,
-                      dropout_rate=0.0, pad_token_id=PAD_ID, eos_token_id=EOS_ID,
-                      decoder_start_token_id=PAD_ID)
-    with torch.random.fork_rng(devices=[]):
-        torch.manual_seed(0)
-        model = T5ForConditionalGeneration(config).eval()
-    # exactly NEW_TOKENS tokens per reply for every variant (they all call generate with this config)
-    model.generation_config = GenerationConfig(decoder_start_token_id=PAD_ID, pad_token_id=PAD_ID,
-                                               eos_token_id=EOS_ID, min_new_tokens=NEW_TOKENS)
-    model.save_pretrained(out)
-    tokenizer.save_pretrained(out)
-    return out
-
-
-def model_vocab(model: Path) -> int:
-    return int(json.loads((model / "config.json").read_text())["vocab_size"])
-
-
-def bench_prompts(vocab: int, seed: int = 1) -> list[str]:
-    """PROMPTS prompts of PROMPT_TOKENS tokens each (PROMPT_TOKENS - 1 words plus </s>)."""
-    words = invented_words(vocab - 3)
-    rng = random.Random(seed)
-    return [" ".join(rng.choices(words, k=PROMPT_TOKENS - 1)) for _ in range(PROMPTS)]
 
 
 def variant_cfg(model: Path, variant: str, epochs: int = EPOCHS) -> Experiment:
@@ -152,7 +82,7 @@ def variant_cfg(model: Path, variant: str, epochs: int = EPOCHS) -> Experiment:
         "base": {"model": str(model), "device": "cpu", "precision": "bf16" if "bf16" in variant else "fp32"},
         "lora": {"rank": RANK, "scope": "encoder-decoder" if variant.endswith("-ed") else "decoder"},
         "reference": {"mode": "copy" if variant.startswith("naive") else "adapters-off"},
-        "reward": {"backend": "callable", "source": "bench:length_harm"},
+        "reward": {"backend": "callable", "source": common.REWARD_SOURCE},
         "ppo": {"prompts_per_step": PROMPTS, "minibatch": MINIBATCH, "epochs": epochs},
         "generation": {"max_new_tokens": NEW_TOKENS, "max_prompt_tokens": PROMPT_TOKENS},
         "data": {"prompts": "unused-by-the-bench"},
@@ -313,18 +243,13 @@ STEPS: dict[str, Callable[[Setup, int], dict[str, float]]] = {
 }
 
 
-def cpu_seconds() -> float:
-    usage = resource.getrusage(resource.RUSAGE_SELF)
-    return usage.ru_utime + usage.ru_stime
-
-
 def run_step(s: Setup, step: int) -> dict[str, float]:
     """One step: generate, old_logp, reference, reward, update, other (step minus the rest), step, cpu."""
-    cpu = cpu_seconds()
+    cpu = common.cpu_seconds()
     raw = STEPS[s.variant](s, step)
     out = {part: raw.get(part, 0.0) for part in PARTS if part != "other"}
     out["other"] = max(0.0, raw["step"] - sum(out.values()))
-    return {**out, "step": raw["step"], "cpu": cpu_seconds() - cpu}
+    return {**out, "step": raw["step"], "cpu": common.cpu_seconds() - cpu}
 
 
 # ---------------------------------------------------------------------------------------- measurements
@@ -423,10 +348,6 @@ def precision_check(model: Path) -> dict[str, dict[str, float]]:
 # ---------------------------------------------------------------------------------------- report
 
 
-def ratio(a: float, b: float) -> float:
-    return a / b if b else float("nan")
-
-
 def summarise(entry: dict[str, Any]) -> dict[str, float]:
     m, e = entry.get("memory", {}), entry["estimate"]
     t = {v: entry["time"].get(v, {"step": float("nan"), "cpu": float("nan")}) for v in VARIANTS}
@@ -492,13 +413,25 @@ def print_tables(results: dict[str, Any]) -> None:
                   f"{'within' if c['within_tolerance'] else 'OUTSIDE'} tolerance")
 
 
-def _no_nan(value: Any) -> Any:
-    """Strict JSON: ratios that could not be formed (a variant not measured) become null."""
-    if isinstance(value, dict):
-        return {k: _no_nan(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_no_nan(v) for v in value]
-    return None if isinstance(value, float) and value != value else value
+def skip_emulated_bf16(variants: list[str], memory: list[str], keep: bool) -> dict[str, str]:
+    """Without native bf16 (alignrun.budget.native_bf16, what `alignrun check` warns about) torch emulates it
+    and a bf16 step takes several times an fp32 one: the bf16 variants are left out unless asked for."""
+    if keep or budget.native_bf16():
+        return {}
+    why = (f"emulated bf16 (cpu {torch.backends.cpu.get_cpu_capability()}, no native avx512_bf16/amx_bf16): "
+           "skipped, it would take several times an fp32 step; --emulated-bf16 times it anyway")
+    dropped = {v: why for v in VARIANTS if "bf16" in v and (v in variants or v in memory)}
+    variants[:] = [v for v in variants if v not in dropped]
+    memory[:] = [v for v in memory if v not in dropped]
+    return dropped
+
+
+def predicted_seconds(model: Path, variants: list[str], memory: list[str], rounds: int) -> float:
+    """The shape's share of the run from the resource estimate: a warm-up (a quarter step) and `rounds` steps
+    per variant (naive ~1.3x), plus the memory runs (side by side on shared cores) and loading."""
+    step = budget.estimate(variant_cfg(model, "ours")).seconds_per_step
+    return step * (sum((1.3 if v.startswith("naive") else 1.0) * (rounds + 0.25) for v in variants)
+                   + 1.3 * len(memory) + 2)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -514,16 +447,17 @@ def main(argv: list[str] | None = None) -> int:
                     + ",".join(VARIANTS) + ")")
     ap.add_argument("--memory-epochs", type=int, default=EPOCHS,
                     help="PPO epochs in the memory runs (1 is faster, reads ~5%% lower: less fragmentation)")
-    ap.add_argument("--threads", type=int, default=0, help="torch threads (0: all cores)")
+    ap.add_argument("--threads", type=int, default=0, help="torch threads (0: as `alignrun run` chooses them)")
+    ap.add_argument("--budget-s", type=float, default=540,
+                    help="skip a shape whose predicted time would end the run after this many seconds (0: no limit)")
+    ap.add_argument("--emulated-bf16", action="store_true",
+                    help="time the bf16 variants even where this CPU only emulates bf16 (slow)")
     ap.add_argument("--child", choices=VARIANTS, help=argparse.SUPPRESS)
     ap.add_argument("--model", type=Path, help=argparse.SUPPRESS)
     ap.add_argument("--epochs", type=int, default=EPOCHS, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
-    set_threads(args.threads)
-    import transformers
-
-    transformers.utils.logging.set_verbosity_error()
-    transformers.utils.logging.disable_progress_bar()
+    threads_reason = common.set_bench_threads(args.threads)
+    common.quiet_transformers()
     instrument()
     if args.child:
         print(json.dumps(memory_child(args.model, args.child, args.epochs)))
@@ -535,29 +469,33 @@ def main(argv: list[str] | None = None) -> int:
                                  (variants, VARIANTS, "--variants")):
         if any(g not in allowed for g in given):
             ap.error(f"{what} {','.join(given)}: choose from {', '.join(allowed)}")
-    started = time.perf_counter()
+    log = common.Log()
+    skipped = skip_emulated_bf16(variants, memory, args.emulated_bf16)
+    for variant, why in skipped.items():
+        log(f"{variant}: {why}")
     results: dict[str, Any] = {
         "setup": {"prompts": PROMPTS, "prompt_tokens": PROMPT_TOKENS, "new_tokens": NEW_TOKENS,
                   "minibatch": MINIBATCH, "epochs": EPOCHS, "lora_rank": RANK, "lora_targets": "q,v",
-                  "memory_epochs": args.memory_epochs, "rounds": args.rounds, "threads": torch.get_num_threads(),
-                  "omp_wait_policy": os.environ.get("OMP_WAIT_POLICY", "(unset)"), "torch": torch.__version__,
-                  "platform": platform.platform(), "load_average_start": os.getloadavg()},
-        "fast_settings": budget.fast_settings(), "shapes": {},
+                  "memory_epochs": args.memory_epochs, "rounds": args.rounds, "threads_reason": threads_reason,
+                  "budget_s": args.budget_s, **common.machine()},
+        "fast_settings": budget.fast_settings(), "skipped": skipped, "shapes": {},
     }
-
-    def log(message: str) -> None:
-        print(f"[{time.perf_counter() - started:6.0f}s] {message}", flush=True)
-
     with tempfile.TemporaryDirectory(prefix="alignrun-bench-") as tmp:
         for name in shapes:
             log(f"{name}: building the model")
             model = build_model(SHAPES[name], Path(tmp) / name)
-            entry: dict[str, Any] = {"shape": asdict(SHAPES[name]), "estimate": {
+            predicted = predicted_seconds(model, variants, memory, args.rounds)
+            if args.budget_s and log.elapsed() + predicted > args.budget_s:
+                skipped[name] = (f"predicted {predicted:.0f} s would end the run after the {args.budget_s:.0f} s "
+                                 "budget (--budget-s 0 runs it)")
+                log(f"{name}: skipped, {skipped[name]}")
+                continue
+            entry: dict[str, Any] = {"shape": asdict(SHAPES[name]), "predicted_s": predicted, "estimate": {
                 v: asdict(budget.estimate(variant_cfg(model, v))) for v in ("ours", "naive")}}
-            if name == shapes[0]:  # the smallest shape asked for: tiny by default
+            if not results["shapes"]:  # the smallest shape asked for: tiny by default
                 log(f"{name}: precision check")
                 results["precision_check"], results["precision_check_shape"] = precision_check(model), name
-            log(f"{name}: timing {', '.join(variants)}, {args.rounds} round(s)")
+            log(f"{name}: timing {', '.join(variants)}, {args.rounds} round(s) (predicted {predicted:.0f} s)")
             entry["time"] = time_shape(model, variants, args.rounds)
             gc.collect()
             if memory:
@@ -566,11 +504,11 @@ def main(argv: list[str] | None = None) -> int:
             entry["summary"] = summarise(entry)
             results["shapes"][name] = entry
     results["setup"]["load_average_end"] = os.getloadavg()
-    results["setup"]["wall_s"] = time.perf_counter() - started
-    out = Path(args.out)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    out.write_text(json.dumps(_no_nan(results), indent=2, allow_nan=False) + "\n")  # before printing: kept
+    results["setup"]["wall_s"] = log.elapsed()
+    out = common.write_results(args.out, results)  # before printing: kept
     print_tables(results)
+    for what, why in results["skipped"].items():
+        print(f"skipped {what}: {why}")
     print(f"\nwrote {out} ({results['setup']['wall_s']:.0f} s)")
     return 0
 

@@ -16,6 +16,8 @@ import sys
 import time
 from pathlib import Path
 
+import _bench_common as common  # first: offline settings and alignrun's start-up thread settings
+
 
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -30,6 +32,7 @@ def main() -> int:
     from alignrun.demo.build import build_demo
     from alignrun.demo.run import run_demo
 
+    setup = common.machine()
     out = Path(args.out)
     shutil.rmtree(out, ignore_errors=True)
     t0 = time.perf_counter()
@@ -62,7 +65,8 @@ def main() -> int:
           f"training steps {report['run']['steps']}, held-out prompts {ev['prompts']} x {ev['samples_per_prompt']}")
     for r in rows:
         print(f"  {'PASS' if r['pass'] else 'FAIL'}  {r['criterion']:45} {r['value']:>9}  (target {r['target']})")
-    (out / "bench_demo.json").write_text(json.dumps({"build_s": built, "total_s": total, "checks": rows}, indent=2))
+    common.write_results(out / "bench_demo.json", {"setup": setup, "build_s": built, "total_s": total,
+                                                   "checks": rows})
     return 0 if all(r["pass"] for r in rows) else 1
 
 

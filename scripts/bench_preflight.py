@@ -1,6 +1,6 @@
 """Time the polarity preflight with a ~60M-parameter BERT-shaped classifier (random weights, offline).
 
-    python scripts/bench_preflight.py [--threads N] [--repeat 3]
+    python scripts/bench_preflight.py [--threads N] [--repeat 3] [--out FILE.json]
 
 Builds the classifier from a config (BERT-base width, 6 layers, 24k vocabulary: about 62M parameters),
 trains a small word-piece tokenizer on the probe texts, saves both to a temporary folder, then times
@@ -14,7 +14,7 @@ import tempfile
 import time
 from pathlib import Path
 
-import torch
+import _bench_common as common  # first: offline settings and alignrun's start-up thread settings
 from tokenizers import Tokenizer, models, normalizers, pre_tokenizers, processors, trainers
 from transformers import BertConfig, BertForSequenceClassification, PreTrainedTokenizerFast
 
@@ -45,11 +45,12 @@ def build(folder: Path) -> int:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("--threads", type=int, default=0, help="torch threads for this script (0: torch's default)")
+    parser.add_argument("--threads", type=int, default=0, help="torch threads (0: as `alignrun run` chooses them)")
     parser.add_argument("--repeat", type=int, default=3, help="time check_polarity this many times")
+    parser.add_argument("--out", help="also write the figures to this JSON file")
     args = parser.parse_args()
-    if args.threads:
-        torch.set_num_threads(args.threads)
+    threads_reason = common.set_bench_threads(args.threads)
+    setup = common.machine()
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp) / "classifier"
         params = build(folder)
@@ -63,10 +64,13 @@ def main() -> None:
             report = check_polarity(scorer, section)
             times.append(time.perf_counter() - start)
     n = report.n_harmful + report.n_benign
-    print(f"classifier: {params / 1e6:.1f}M parameters, torch threads {torch.get_num_threads()}")
+    print(f"classifier: {params / 1e6:.1f}M parameters, torch threads {setup['threads']} ({threads_reason})")
     print(f"load: {load_s:.2f} s")
     print(f"preflight ({n} probes, batch {section.batch_size}): " + ", ".join(f"{t:.2f}" for t in times)
           + f" s (best {min(times):.2f} s; target <= 10 s)")
+    if args.out:
+        common.write_results(args.out, {"setup": {**setup, "threads_reason": threads_reason}, "params": params,
+                                        "probes": n, "load_s": load_s, "preflight_s": times})
 
 
 if __name__ == "__main__":

@@ -177,3 +177,36 @@ def test_check_prints_the_estimate_and_the_fast_settings(tiny_models: dict[str, 
     assert "fast settings: bf16" in printed
     run_check(config, ["base.model=/nonexistent/base"], None)  # the verdict still prints without a base model
     assert "resources: not estimated: base.model" in capsys.readouterr().out
+
+
+def test_emulated_bf16_warning_only_for_bf16_on_a_cpu_without_it():
+    assert budget.emulated_bf16_warning("fp32", "cpu", native=False) is None
+    assert budget.emulated_bf16_warning("bf16", "cpu", native=True) is None
+    assert budget.emulated_bf16_warning("bf16", "cuda", native=False) is None  # a GPU's bf16 is another matter
+    assert "emulates bf16" in (budget.emulated_bf16_warning("bf16", "cpu", native=False) or "")
+    # torch's CPU capability counts too: AVX2 kernels (ATEN_CPU_CAPABILITY=avx2) do not use avx512_bf16
+    assert budget.native_bf16({"avx512_bf16"}, "AVX512") and not budget.native_bf16({"avx512_bf16"}, "AVX2")
+    assert budget.native_bf16({"amx_bf16"}, "AVX512") and not budget.native_bf16({"avx512f"}, "AVX512")
+
+
+def test_run_prints_checks_emulated_bf16_warning_at_start(tiny_models: dict[str, Path], tmp_path: Path,
+                                                          capsys: pytest.CaptureFixture[str],
+                                                          monkeypatch: pytest.MonkeyPatch):
+    from alignrun.config import load_config
+    from alignrun.errors import UserError
+    from alignrun.preflight import run_check
+    from alignrun.trainer import run_experiment
+    from tests.tiny_run import write_tiny_experiment
+
+    monkeypatch.setattr(budget, "native_bf16", lambda *args: False)  # a CPU without native bf16
+    # a reward that cannot tell harm from benign: the run stops at the preflight, after its start-up lines
+    exp = write_tiny_experiment(tmp_path, tiny_models["t5"], reward_source="tests.tiny_run:constant_harm")
+    run_check(exp.config, ["base.precision=bf16"], None)
+    checked = capsys.readouterr().out
+    with pytest.raises(UserError):
+        run_experiment(load_config(exp.config, ["base.precision=bf16"]), tmp_path / "run", quiet=True)
+    started = capsys.readouterr().out
+    line = budget.emulated_bf16_warning("bf16", "cpu", native=False)
+    assert line and f"!! {line}" in checked and f"warning: {line}" in started
+    run_check(exp.config, [], None)  # fp32: no warning
+    assert "emulates bf16" not in capsys.readouterr().out

@@ -13,7 +13,7 @@ from typing import Any
 
 import pytest
 
-from alignrun import sweep
+from alignrun import cpu, sweep
 from alignrun.config import Experiment, load_config, to_toml
 from alignrun.errors import UserError
 from alignrun.report import SCHEMA
@@ -95,7 +95,8 @@ def fake_runner(config: dict[str, Any], folder: str, resume: bool, quiet: bool) 
     calls = out.parent / "calls.jsonl"
     with calls.open("a") as fh:
         fh.write(json.dumps({"name": cfg.run.name, "resume": resume, "pid": os.getpid(),
-                             "threads": cfg.base.threads, "existed": (out / "marker").exists()}) + "\n")
+                             "threads": cfg.base.threads, "existed": (out / "marker").exists(),
+                             "cpus": sorted(os.sched_getaffinity(0))}) + "\n")
     if not resume and (out / "status.json").exists():
         raise AssertionError("a fresh trial must start from an empty folder")
     write_text_atomic(out / "config.toml", to_toml(cfg))
@@ -187,7 +188,10 @@ def test_workers_run_in_separate_processes_with_divided_cores(tmp_path: Path, mo
     assert sweep.run_sweep(str(path), [], out=str(root), backend="local", workers=2, address=None, quiet=True) == 0
     seen = calls(root)
     assert len(seen) == 4 and os.getpid() not in {c["pid"] for c in seen}
-    assert {c["threads"] for c in seen} == {max(1, len(os.sched_getaffinity(0)) // 2)}
+    assert {c["threads"] for c in seen} == {max(1, cpu.choose_threads().threads // 2)}
+    # each worker process keeps to its own share of the CPUs (disjoint where there are 2 or more)
+    masks = {c["pid"]: c["cpus"] for c in seen}
+    assert sorted(masks.values()) == sorted(cpu.worker_shares(cpu.affinity_cpus(), 2))
 
 
 def test_ray_missing_names_the_extra(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
