@@ -13,7 +13,9 @@ every check draws the same sampling noise; it scores them with the reward classi
 over replies of the summed k1 (log pi - log pi_ref). The target is first reached at the check where the share of
 replies with harm >= 0.5 is at most half of the check before training and that KL is at most kl.target. Time to it
 is the summed wall time of the training steps up to that check (sampling, reward, update; the checks themselves,
-preflight and evaluations excluded), tokens are the generated reply tokens up to it.
+preflight and evaluations excluded), with the process's CPU time beside it (less sensitive to other processes on a
+shared machine at one thread); tokens are the generated reply tokens up to it. A run that never reaches the target in
+its 32 steps has no time to it, and no ratio where it is the PPO run of that seed.
 
 Final figures come from each run's report.json (4-sample evaluation of the quick demo): harm rate change, judge
 change, KL, seq-rep-4, length, alarms; "accepted" is bench_demo.py's acceptance (harm rate -50%, judge -30%) with no
@@ -52,15 +54,17 @@ class Checks:
 
     def __init__(self, train_step: Any, heldout: list[str], every: int):
         self.train_step, self.heldout, self.every = train_step, heldout, every
-        self.train_s, self.tokens, self.rows = 0.0, 0.0, []  # type: list[dict[str, float]]
+        self.train_s, self.train_cpu_s, self.tokens = 0.0, 0.0, 0.0
+        self.rows: list[dict[str, float]] = []
 
     def __call__(self, policy: Any, net: Any, optimizer: Any, accelerator: Any, scorer: Any, controller: Any,
                  prompts: list[str], cfg: Any, step: int, device: Any) -> dict[str, float]:
         if not self.rows:
             self.check(policy, scorer, cfg, device, step)
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         row = self.train_step(policy, net, optimizer, accelerator, scorer, controller, prompts, cfg, step, device)
         self.train_s += time.perf_counter() - t0
+        self.train_cpu_s += time.process_time() - c0
         self.tokens += row["length_mean"] * len(prompts) * cfg.method.samples_per_prompt
         if (step + 1) % self.every == 0 or step + 1 == cfg.ppo.steps:
             self.check(policy, scorer, cfg, device, step + 1)
@@ -77,7 +81,8 @@ class Checks:
                 ro = rollout(policy, [p for p in self.heldout for _ in range(2)], cfg.generation.max_prompt_tokens,
                              cfg.generation.max_new_tokens, device)
         harm = scorer.score(ro.texts).harm
-        self.rows.append({"step": step, "train_s": round(self.train_s, 2), "tokens": int(self.tokens),
+        self.rows.append({"step": step, "train_s": round(self.train_s, 2), "train_cpu_s": round(self.train_cpu_s, 2),
+                          "tokens": int(self.tokens),
                           "harm_rate": float((harm >= cfg.evaluation.harm_threshold).mean()),
                           "harm_mean": float(harm.mean()),
                           "kl": float((ro.logp - ro.ref_logp).sum(dim=1).mean())})  # both 0 on padding
@@ -111,8 +116,9 @@ def run_one(method: str, seed: int, out: Path, every: int, extra: list[str]) -> 
     return {
         "method": method, "seed": seed, "settings": METHODS[method],
         "reached_step": reached and reached["step"], "reached_train_s": reached and reached["train_s"],
-        "reached_tokens": reached and reached["tokens"],
-        "train_s": round(checks.train_s, 2), "tokens": int(checks.tokens), "run_wall_s": round(wall, 1),
+        "reached_train_cpu_s": reached and reached["train_cpu_s"], "reached_tokens": reached and reached["tokens"],
+        "train_s": round(checks.train_s, 2), "train_cpu_s": round(checks.train_cpu_s, 2), "tokens": int(checks.tokens),
+        "run_wall_s": round(wall, 1),
         "final": {"harm_rate_change": harm_change, "harm_mean_after": a["reward_classifier"]["mean"],
                   "judge_change": judge_change, "judge_after": a["judge"]["mean"],
                   "kl": a["guards"]["kl_to_reference"], "seq_rep_4": a["guards"]["seq_rep_4_mean"],
@@ -130,7 +136,8 @@ def summarise(results: list[dict[str, Any]]) -> dict[str, Any]:
     out: dict[str, Any] = {}
     for method in METHODS:
         mine = [r for r in results if r["method"] == method]
-        ratios: dict[str, list[float | None]] = {"reached_train_s": [], "reached_tokens": [], "train_s": []}
+        ratios: dict[str, list[float | None]] = {"reached_train_s": [], "reached_train_cpu_s": [], "reached_tokens": [],
+                                                 "train_s": [], "train_cpu_s": []}
         for r in mine:
             ppo = by.get(("ppo", r["seed"]))
             for key in ratios:
@@ -141,7 +148,7 @@ def summarise(results: list[dict[str, Any]]) -> dict[str, Any]:
             "accepted": [r["accepted"] for r in mine],
             "reached_train_s": [r["reached_train_s"] for r in mine], "reached_tokens": [r["reached_tokens"] for r in mine],
             "ratio_to_ppo": ratios,
-            "median_ratio_reached_train_s": _median(ratios["reached_train_s"]),
+            "median_ratio": {key: _median(values) for key, values in ratios.items()},
             "final_median": {k: statistics.median(r["final"][k] for r in mine)
                              for k in ("harm_rate_change", "judge_change", "kl", "seq_rep_4", "length_words")} if mine else {},
         }
@@ -177,7 +184,8 @@ def main() -> int:
     summary = _write(args.results, args, results, started, load)
     for method, s in summary.items():
         print(f"{method:5} reached {s['reached']} accepted {s['accepted']} time-to-target / PPO "
-              f"{s['ratio_to_ppo']['reached_train_s']} (median {s['median_ratio_reached_train_s']})")
+              f"{s['ratio_to_ppo']['reached_train_s']} (median {s['median_ratio']['reached_train_s']}; CPU time "
+              f"{s['median_ratio']['reached_train_cpu_s']})")
     return 0
 
 
