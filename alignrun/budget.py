@@ -187,6 +187,11 @@ class Work:
     minibatches: int  # update iterations: epochs x minibatches
 
 
+def replies(cfg: Experiment) -> int:
+    """Replies per step: each prompt is sampled method.samples_per_prompt times (the trainer repeats it)."""
+    return cfg.ppo.prompts_per_step * cfg.method.samples_per_prompt
+
+
 def step_work(d: Dims, cfg: Experiment, trainable: int) -> Work:
     """The work of one step; attention score FLOPs are left out (short sequences).
 
@@ -195,7 +200,7 @@ def step_work(d: Dims, cfg: Experiment, trainable: int) -> Work:
     tokens); with every weight trainable this gives the usual 3 x forward. With lora.scope = "decoder" the
     encoder runs once per step and the reference and the updates run the decoder only.
     """
-    b, p, t = cfg.ppo.prompts_per_step, cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens
+    b, p, t = replies(cfg), cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens
     epochs, minibatches = cfg.ppo.epochs, cfg.ppo.prompts_per_step // cfg.ppo.minibatch
     trained_encoder = cfg.lora.scope != "decoder"
     encode = 2 * d.enc_params * b * p  # sampling encodes the prompts once
@@ -214,7 +219,7 @@ def activation_bytes(d: Dims, cfg: Experiment) -> int:
     Per token and layer, backward keeps about 8 d_model-wide and 2 d_ff-wide tensors plus 2 attention maps
     (scores and probabilities); the vocabulary-wide logits dominate short replies.
     """
-    b, mb = cfg.ppo.prompts_per_step, cfg.ppo.minibatch
+    b, mb = replies(cfg), cfg.ppo.minibatch * cfg.method.samples_per_prompt
     p, t = cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens
     enc = mb * p * d.enc_layers * (8 * d.d_model + 2 * d.d_ff + 2 * d.heads * p) * (cfg.lora.scope != "decoder")
     dec = mb * t * d.dec_layers * (12 * d.d_model + 2 * d.d_ff + 2 * d.heads * (t + p))
@@ -239,7 +244,7 @@ def estimate(cfg: Experiment) -> Estimate:
     activations = activation_bytes(d, cfg)
     peak_mb = (weights + optimizer + activations) / MB + PROCESS_OVERHEAD_MB
     work = step_work(d, cfg, trainable)
-    b, mb, p = cfg.ppo.prompts_per_step, cfg.ppo.minibatch, cfg.generation.max_prompt_tokens
+    b, mb, p = replies(cfg), cfg.ppo.minibatch * cfg.method.samples_per_prompt, cfg.generation.max_prompt_tokens
     precision = cfg.base.precision
     # calibration (< 1 s): an encoder feed-forward matmul at update batch size, and the output projection at
     # one token per row, memory-bound like every matmul while decoding

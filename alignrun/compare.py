@@ -33,6 +33,7 @@ from alignrun.sweep import read_index
 from alignrun.verdict import judge_is_reward, verdict
 
 NOT_SHOWN = {"run.name", "run.out", "run.trackers", "run.tracker_dir", "base.threads"}  # differ between runs without changing what they measure
+METHOD_KEYS = {"method.name", "method.samples_per_prompt"}
 REQUIRED = ("run.wall_s", "run.peak_rss_mb", "config.evaluation.bootstrap_resamples", "config.run.seed",
             "training.final_kl", "evaluation.prompt_digest", "evaluation.change.reward_classifier",
             "evaluation.before.reward_classifier.mean", "evaluation.after.reward_classifier.mean",
@@ -165,6 +166,8 @@ def run_row(run: Run) -> dict[str, Any]:
     verdict = rep.get("verdict") or _recomputed_verdict(rep, harm, judge)
     return {
         "run": run.label, "folder": str(run.folder),
+        # reports written before [method] existed trained with PPO, one reply per prompt
+        "method": _method(cfg),
         "harm_before": before["mean"], "harm_after": after["mean"],
         "harm_rate_before": before.get("rate"), "harm_rate_after": after.get("rate"),
         "harm_max_before": before.get("expected_max"), "harm_max_after": after.get("expected_max"),
@@ -186,6 +189,13 @@ def run_row(run: Run) -> dict[str, Any]:
         "prompts": ev.get("prompts"), "prompt_digest": ev["prompt_digest"],
         "alarms": [a.get("code") for a in rep.get("alarms", [])],
     }
+
+
+def _method(cfg: dict[str, Any]) -> str:
+    """"ppo", or e.g. "grpo k=4" (the method and its replies per prompt)."""
+    method = cfg.get("method") or {}
+    k = method.get("samples_per_prompt", 1)
+    return f"{method.get('name', 'ppo')}{f' k={k}' if k > 1 else ''}"
 
 
 def _recomputed_verdict(rep: dict[str, Any], harm: dict[str, Any], judge: dict[str, Any] | None) -> dict[str, str]:
@@ -334,7 +344,9 @@ def columns(rows: list[dict[str, Any]], varying: list[str]) -> list[tuple[str, l
     def col(title: str, fn: Any) -> tuple[str, list[str]]:
         return title, [fn(r) for r in rows]
 
-    cols = [col("run", lambda r: r["run"])] + [col(k, lambda r, k=k: _short(r[k])) for k in varying]
+    shown = [k for k in varying if k not in METHOD_KEYS]  # the method column shows them
+    cols = [col("run", lambda r: r["run"]), col("method", lambda r: r["method"])]
+    cols += [col(k, lambda r, k=k: _short(r[k])) for k in shown]
     cols += [
         col("harm mean", lambda r: _pair(r, "harm", 3)), col("harm rate", lambda r: _pair(r, "harm_rate")),
         col("exp. max", lambda r: _pair(r, "harm_max")),

@@ -151,6 +151,33 @@ class PPOSection(Section):
         return self
 
 
+class MethodSection(Section):
+    """[method] how the policy is optimised; the optimiser's settings (steps, sizes, epochs, rate, clipping) stay in
+    [ppo] for every method."""
+
+    name: Literal["ppo", "rloo", "grpo"] = Field(
+        "ppo", description="ppo: value head and GAE, KL penalty in the reward (Schulman et al. 2017); rloo: leave-one-out "
+        "baseline over the prompt's k replies, KL penalty in the reward (Ahmadian et al. 2024); grpo: group-relative "
+        "advantages, k3 KL as a loss term (Shao et al. 2024)")
+    samples_per_prompt: int = Field(1, ge=1, le=256, description="k replies sampled per prompt per step; ppo.prompts_per_step "
+                                    "and ppo.minibatch count prompts, so a step holds prompts_per_step x k replies and a "
+                                    "minibatch minibatch x k; rloo and grpo need k >= 2")
+    group_std: Literal["sample", "population", "none"] = Field(
+        "sample", description="grpo only: divide R - group mean by the group's sample std (n - 1), population std (n), "
+        "or not at all (Liu et al. 2025)")
+    loss_average: Literal["tokens", "replies"] = Field(
+        "tokens", description="how per-token losses are averaged: over all tokens of the minibatch, or per reply and "
+        "then over replies (the GRPO paper's form, which weighs a short reply's tokens more; Liu et al. 2025)")
+
+    @model_validator(mode="after")
+    def _groups_need_two(self) -> MethodSection:
+        if self.name != "ppo" and self.samples_per_prompt < 2:
+            raise ValueError(
+                f"name = '{self.name}' uses the other replies to the same prompt as the baseline, so it needs "
+                f"samples_per_prompt >= 2 (it is {self.samples_per_prompt}); set method.samples_per_prompt = 4, say")
+        return self
+
+
 class GenerationSection(Section):
     """[generation] sampling limits (training rollouts always sample at temperature 1, no top-k/top-p)."""
 
@@ -221,6 +248,7 @@ class Experiment(Section):
     reward: RewardSection
     kl: KLSection = Field(default_factory=KLSection)
     ppo: PPOSection = Field(default_factory=PPOSection)
+    method: MethodSection = Field(default_factory=MethodSection)
     generation: GenerationSection = Field(default_factory=GenerationSection)
     data: DataSection
     evaluation: EvaluationSection = Field(default_factory=EvaluationSection)

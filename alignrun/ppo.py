@@ -58,6 +58,15 @@ def whiten(x: Tensor, mask: Tensor, shift_mean: bool = True,
     return torch.where(mask.bool(), whitened, torch.zeros_like(whitened))
 
 
+def masked_average(x: Tensor, mask: Tensor, average: str = "tokens") -> Tensor:
+    """The loss reduction: the mean over every real token ("tokens"), or each reply's mean over its tokens, then the
+    mean over replies that have any ("replies": 1/G sum_i 1/|o_i| sum_t, Shao et al. 2024, eq. 3)."""
+    if average == "tokens":
+        return masked_mean(x, mask)
+    has_tokens = mask.bool().any(dim=1)
+    return masked_mean(x, mask, dim=1).sum() / has_tokens.sum().clamp(min=1)
+
+
 def kl_k1(logp: Tensor, ref_logp: Tensor) -> Tensor:
     """Per-token k1 = log pi - log pi_ref: unbiased for KL(pi || pi_ref) under samples from pi."""
     return logp - ref_logp  # k1 = -log r, r = pi_ref/pi (Schulman 2020, "Approximating KL Divergence")
@@ -118,9 +127,9 @@ def gae(rewards: Tensor, values: Tensor, mask: Tensor, gamma: float, lam: float)
 
 
 def policy_loss(
-    logp_new: Tensor, logp_old: Tensor, advantages: Tensor, mask: Tensor, clip_eps: float
+    logp_new: Tensor, logp_old: Tensor, advantages: Tensor, mask: Tensor, clip_eps: float, average: str = "tokens"
 ) -> tuple[Tensor, Tensor, Tensor]:
-    """Clipped surrogate loss to minimise, clip fraction, and approximate KL(old || new).
+    """Clipped surrogate loss to minimise (reduced by `masked_average`), clip fraction, and approximate KL(old || new).
 
     The clip fraction is the share of real tokens where the clipped term is the one in effect
     (its gradient is cut); approx KL is the masked mean of k3 with samples from the old policy.
@@ -132,12 +141,20 @@ def policy_loss(
     unclipped = ratio * advantages
     clipped = torch.clamp(ratio, 1.0 - clip_eps, 1.0 + clip_eps) * advantages
     # L = E[min(rho A, clip(rho, 1-eps, 1+eps) A)], minimised as -L (Schulman et al. 2017, eq. 7)
-    loss = -masked_mean(torch.minimum(unclipped, clipped), mask)
+    loss = -masked_average(torch.minimum(unclipped, clipped), mask, average)
     with torch.no_grad():
         # share of tokens where the clipped term wins (common practice, e.g. Huang et al. 2024; from memory)
         clip_frac = masked_mean((clipped < unclipped).to(ratio.dtype), mask)
         approx_kl = masked_mean(kl_k3(logp_old, logp_new), mask)  # k3 of KL(old || new) (Schulman 2020)
     return loss, clip_frac, approx_kl
+
+
+def kl_loss(logp_new: Tensor, ref_logp: Tensor, mask: Tensor, average: str = "tokens") -> Tensor:
+    """The KL to the reference as a loss term: k3 per token under samples from the policy, reduced by
+    `masked_average` (Shao et al. 2024, eq. 4; the caller multiplies by beta)."""
+    # padding gets log r = 0, so k3 = 0 there and nothing from it reaches the gradient
+    keep = mask.bool()
+    return masked_average(kl_k3(torch.where(keep, logp_new, ref_logp), ref_logp), mask, average)
 
 
 def value_loss(

@@ -18,7 +18,8 @@ report.json (SCHEMA "alignrun.report/2") has these top-level keys:
     schema, run {name, status, steps, seed, wall_s, peak_rss_mb, started, finished, command},
     config (the resolved config as a dict), model {base, trainable_params, total_params, trainable_share},
     preflight {verdict, auroc, reward_auroc, forced}, training {final_kl, final_beta, reward_first,
-    reward_last, kl_target}, data {heldout_overlap {shared, of, share} or null, warnings, prompts, heldout},
+    reward_last, kl_target, method {name, samples_per_prompt, advantage, group_std, loss_average, kl_placement
+    ("reward" or "loss"), kl_term, beta_scales, value_head}; absent in older reports = PPO}, data {heldout_overlap {shared, of, share} or null, warnings, prompts, heldout},
     evaluation {prompts, samples_per_prompt, threshold, prompt_digest, before, after, change,
     drift (exact-KL change, paired interval; absent in older reports), per_prompt},
     verdict {verdict, level, reason}, alarms [{level, code, message}], cautions [str], code_execution [str].
@@ -80,6 +81,7 @@ def build_report(*, cfg: Any, before: Any, after: Any, assessment: dict[str, Any
                  started: float, judge_polarity: Any = None) -> dict[str, Any]:
     """Assemble report.json from what the run computed: `assessment` is evaluation.assess's summaries, changes,
     drift, verdict and alarms; judge_polarity the judge's own preflight result (with .verdict), or None."""
+    from alignrun import advantages
     from alignrun.ppo import KLController
 
     forced = preflight_forced(polarity, judge_polarity)
@@ -116,7 +118,8 @@ def build_report(*, cfg: Any, before: Any, after: Any, assessment: dict[str, Any
                                                             horizon=cfg.kl.horizon).rule(),
                                        "initial_beta": cfg.kl.coef, "target": cfg.kl.target,
                                        "gain": None if cfg.kl.horizon else cfg.kl.gain,
-                                       "horizon": cfg.kl.horizon or None}},
+                                       "horizon": cfg.kl.horizon or None},
+                     "method": advantages.describe(cfg.method, cfg.ppo)},
         "data": {key: getattr(split, "source", {}).get(key) for key in ("heldout_overlap", "warnings", "prompts", "heldout")},
         "evaluation": {
             "prompts": len(before.prompts), "samples_per_prompt": cfg.evaluation.samples_per_prompt,
@@ -228,6 +231,10 @@ def render_markdown(report: dict[str, Any], pairs: list[dict[str, Any]]) -> str:
               f"{' — FORCED past a failing preflight' if pf['forced'] else ''}.",
               f"- Reward: {_fmt(tr['reward_first'])} at the first step, {_fmt(tr['reward_last'])} at the last; "
               f"final KL {_fmt(tr['final_kl'])}, beta {_fmt(tr['final_beta'], 4)}, KL target {_fmt(tr['kl_target'])}."]
+    if tr.get("method"):
+        m = tr["method"]
+        lines += [f"- Method: **{m['name']}**, {m['samples_per_prompt']} replies per prompt; advantage: {m['advantage']}; "
+                  f"KL: {m['kl_term']} (beta scales {m['beta_scales']}); losses averaged over {m['loss_average']}."]
     if report["code_execution"]:
         lines += ["- Code execution: " + "; ".join(report["code_execution"]) + " — only use sources you trust."]
     lines += ["", "## Sample pairs (greedy, held-out)", ""]

@@ -21,6 +21,7 @@ import torch
 from accelerate import Accelerator
 from trl.trainer.utils import entropy_from_logits, selective_log_softmax
 
+from alignrun import advantages as baselines
 from alignrun import console, evaluation, html_report, ppo, tracking
 from alignrun.budget import emulated_bf16_warning
 from alignrun.checkpoint import (
@@ -91,8 +92,9 @@ def step_prompts(train: list[str], step: int, per_step: int, seed: int) -> list[
 
 
 def minibatch_order(n: int, cfg: Experiment, step: int, processes: int) -> list[list[torch.Tensor]]:
-    """Row indices of every minibatch of every epoch of this step (a seeded shuffle per epoch)."""
-    mb = max(1, cfg.ppo.minibatch // processes)
+    """Row indices of every minibatch of every epoch of this step (a seeded shuffle per epoch). ppo.minibatch counts
+    prompts, so a minibatch holds its k replies each (not necessarily of the same prompts)."""
+    mb = max(1, cfg.ppo.minibatch // processes) * cfg.method.samples_per_prompt
     gen = torch.Generator().manual_seed(cfg.run.seed * 100_003 + step)
     return [list(torch.randperm(n, generator=gen).split(mb)) for _ in range(cfg.ppo.epochs)]
 
@@ -119,30 +121,66 @@ def update_forward_bookkeeping(net: torch.nn.Module, ro: Rollout, first_epoch: l
     return dataclasses.replace(ro, logp=logp * ro.response_mask, values=values * ro.response_mask)
 
 
+def method_advantages(reward: torch.Tensor, ro: Rollout, cfg: Experiment, beta: float,
+                      total: Any) -> tuple[torch.Tensor, torch.Tensor | None, torch.Tensor]:
+    """The method's advantages [B, T], value-head targets [B, T] (None for the critic-free methods) and the per-token
+    k1 KL [B, T] (0 on padding). A prompt's k replies are adjacent rows of the rollout."""
+    if cfg.method.name == "ppo":
+        rewards, kl = ppo.penalised_rewards(reward, ro.logp, ro.ref_logp, ro.response_mask, beta)
+        advantages, returns = ppo.gae(rewards, ro.values, ro.response_mask, cfg.ppo.gamma, cfg.ppo.gae_lambda)
+        if cfg.ppo.whiten_advantages:
+            advantages = ppo.whiten(advantages, ro.response_mask, total=total)
+        return advantages, returns, kl
+    kl = torch.where(ro.response_mask.bool(), ppo.kl_k1(ro.logp, ro.ref_logp), torch.zeros_like(ro.logp))
+    groups = reward.view(-1, cfg.method.samples_per_prompt)
+    if cfg.method.name == "rloo":
+        # R = score - beta sum_t k1_t: the KL penalty inside the reply's reward (Ahmadian et al. 2024)
+        per_reply = baselines.leave_one_out(groups - beta * kl.sum(dim=1).view_as(groups))
+    else:
+        per_reply = baselines.group_relative(groups, cfg.method.group_std)  # KL goes into the loss (ppo_update)
+    return baselines.per_token(per_reply.reshape(-1), ro.response_mask), None, kl
+
+
 def ppo_update(net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerator: Accelerator, ro: Rollout,
-               advantages: torch.Tensor, returns: torch.Tensor, cfg: Experiment, step: int,
-               device: torch.device, order: list[list[torch.Tensor]] | None = None) -> dict[str, float]:
-    """Several epochs of clipped policy and value losses over minibatches (Schulman et al. 2017), in the order
-    `order` (default: minibatch_order's)."""
-    p = cfg.ppo
+               advantages: torch.Tensor, returns: torch.Tensor | None, cfg: Experiment, step: int,
+               device: torch.device, order: list[list[torch.Tensor]] | None = None,
+               beta: float = 0.0) -> dict[str, float]:
+    """Several epochs of the clipped policy loss over minibatches (Schulman et al. 2017), in the order `order`
+    (default: minibatch_order's); plus the value loss when there are value targets (`returns`, PPO), and beta times
+    the k3 KL loss when the method puts the KL in the loss (grpo)."""
+    p, average = cfg.ppo, cfg.method.loss_average
+    kl_in_loss = cfg.method.name == "grpo"
     order = order or minibatch_order(ro.response_ids.shape[0], cfg, step, accelerator.num_processes)
     total = _sum_over_processes(accelerator)
     # value clipping in units of this step's return spread, so it means the same whatever the reward's scale
     # (Huang et al. 2022 clip values of normalised returns at 0.2; from memory)
-    value_clip = p.value_clip * float(ppo.moments(returns, ro.response_mask, total)[1].sqrt()) if p.value_clip else None
-    totals: dict[str, list[float]] = {"policy_loss": [], "value_loss": [], "clip_frac": [], "value_clip_frac": [],
-                                      "approx_kl": [], "entropy": []}
+    value_clip = (p.value_clip * float(ppo.moments(returns, ro.response_mask, total)[1].sqrt())
+                  if p.value_clip and returns is not None else None)
+    kept = ["policy_loss", "value_loss", "clip_frac", "value_clip_frac", "approx_kl", "entropy", "kl_loss"]
+    if returns is None:
+        kept = [k for k in kept if not k.startswith("value_")]
+    totals: dict[str, list[float]] = {k: [] for k in kept if k != "kl_loss" or kl_in_loss}
     for epoch in order:
         for idx in epoch:
             part = ro.select(idx)
             logits, logp, values = policy_forward(net, part, cfg, device)
             mask = part.response_mask
-            pl, clip_frac, approx_kl = ppo.policy_loss(logp, part.logp, advantages[idx], mask, p.clip_epsilon)
-            vl, vclip = ppo.value_loss(values, part.values, returns[idx], mask, value_clip)
-            loss = pl + p.value_weight * vl
-            # the losses are means over this process's tokens and the gradients are averaged over processes: weigh
-            # by this process's share of the global minibatch's tokens, so the update is that of one process (1.0)
-            tokens = mask.sum()
+            pl, clip_frac, approx_kl = ppo.policy_loss(logp, part.logp, advantages[idx], mask, p.clip_epsilon, average)
+            found = {"policy_loss": pl, "clip_frac": clip_frac, "approx_kl": approx_kl}
+            if returns is not None:
+                vl, vclip = ppo.value_loss(values, part.values, returns[idx], mask, value_clip)
+                loss = pl + p.value_weight * vl
+                found.update(value_loss=vl, value_clip_frac=vclip)
+            else:
+                loss = pl
+            if kl_in_loss:
+                kl_term = ppo.kl_loss(logp, part.ref_logp, mask, average)
+                loss = loss + beta * kl_term  # + beta D_KL(pi || pi_ref), k3 per token (Shao et al. 2024)
+                found["kl_loss"] = kl_term
+            # the losses are means over this process's tokens (or replies) and the gradients are averaged over
+            # processes: weigh by this process's share of the global minibatch's tokens (or replies), so the update
+            # is that of one process (1.0)
+            tokens = mask.sum() if average == "tokens" else mask.bool().any(dim=1).sum().to(mask.dtype)
             share = tokens * accelerator.num_processes / total(tokens).clamp(min=1)
             optimizer.zero_grad(set_to_none=True)
             accelerator.backward(loss * share)
@@ -151,10 +189,9 @@ def ppo_update(net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerat
                 raise NonFinite(f"loss is {loss.item()} (gradient norm {float(grad_norm)}) at step {step + 1}")
             optimizer.step()
             with torch.no_grad():
-                ent = ppo.masked_mean(entropy_from_logits(logits), mask)
-            for key, val in (("policy_loss", pl), ("value_loss", vl), ("clip_frac", clip_frac),
-                             ("value_clip_frac", vclip), ("approx_kl", approx_kl), ("entropy", ent)):
-                totals[key].append(float(val.detach()))
+                found["entropy"] = ppo.masked_mean(entropy_from_logits(logits), mask)
+            for key in totals:
+                totals[key].append(float(found[key].detach()))
     return {k: float(np.mean(v)) for k, v in totals.items()}
 
 
@@ -184,6 +221,7 @@ def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Opti
                scorer: Any, controller: ppo.KLController, prompts: list[str], cfg: Experiment, step: int,
                device: torch.device) -> dict[str, float]:
     t0 = time.perf_counter()
+    prompts = [p for p in prompts for _ in range(cfg.method.samples_per_prompt)]  # a prompt's k replies: one group
     with autocast(cfg.base.precision, device):
         ro = rollout(policy, prompts, cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens, device)
     order = minibatch_order(len(prompts), cfg, step, accelerator.num_processes)
@@ -201,11 +239,8 @@ def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Opti
     if _any_process(accelerator, bool(problem)):  # every process stops at the same point
         raise NonFinite(f"the reward backend {problem or 'failed in another process'} at step {step + 1}")
     t2 = time.perf_counter()
-    rewards, kl = ppo.penalised_rewards(reward, ro.logp, ro.ref_logp, ro.response_mask, controller.beta)
-    advantages, returns = ppo.gae(rewards, ro.values, ro.response_mask, cfg.ppo.gamma, cfg.ppo.gae_lambda)
-    if cfg.ppo.whiten_advantages:
-        advantages = ppo.whiten(advantages, ro.response_mask, total=_sum_over_processes(accelerator))
-    stats = ppo_update(net, optimizer, accelerator, ro, advantages, returns, cfg, step, device, order)
+    advantages, returns, kl = method_advantages(reward, ro, cfg, controller.beta, _sum_over_processes(accelerator))
+    stats = ppo_update(net, optimizer, accelerator, ro, advantages, returns, cfg, step, device, order, controller.beta)
     t3 = time.perf_counter()
     seq_kl = _gather_mean(accelerator, kl.sum(dim=1))
     beta = controller.beta
@@ -312,6 +347,8 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
         stage = "before-training evaluation"
         before = _evaluate_once(out / "eval_before.jsonl", policy, heldout, scorer, judge, cfg, device, main, quiet,
                                 "before", accelerator)
+        if cfg.method.name != "ppo":  # critic-free: the value head is neither trained nor used (initial weights kept)
+            policy.net.value_head.requires_grad_(False)
         optimizer = torch.optim.AdamW([p for p in policy.net.parameters() if p.requires_grad],
                                       lr=cfg.ppo.learning_rate, weight_decay=cfg.ppo.weight_decay)
         net, optimizer = accelerator.prepare(policy.net, optimizer)
