@@ -1,6 +1,7 @@
-"""Benchmark one alignrun step against a bare floor and a naive loop on three random T5-shaped models.
+"""Benchmark one alignrun step against a bare floor and a naive loop on three random T5-shaped models, and on
+request (--shapes causal) a ~61M Llama-shaped decoder-only model.
 
-    scripts/bench [--shapes tiny,small,base] [--variants ours,floor,naive,ours-bf16|all] [--rounds 2]
+    scripts/bench [--shapes tiny,small,base,causal] [--variants ours,floor,naive,ours-bf16|all] [--rounds 2]
                   [--memory VARIANTS] [--out bench-results/bench.json]
 
 For each shape a random model is saved as a Hugging Face folder (WordLevel tokenizer over invented words)
@@ -60,6 +61,8 @@ from accelerate import Accelerator  # noqa: E402
 from tokenizers import Tokenizer, models, pre_tokenizers, processors  # noqa: E402
 from transformers import (  # noqa: E402
     GenerationConfig,
+    LlamaConfig,
+    LlamaForCausalLM,
     PreTrainedTokenizerFast,
     T5Config,
     T5ForConditionalGeneration,
@@ -87,12 +90,15 @@ class Shape:
     d_ff: int
     layers: int
     vocab: int
+    kind: str = "seq2seq"  # or "causal": a Llama-shaped decoder-only model (d_ff = its SwiGLU width)
 
 
 SHAPES = {
     "tiny": Shape(d_model=128, heads=4, d_kv=32, d_ff=512, layers=2, vocab=8000),  # 2.0M parameters
     "small": Shape(d_model=512, heads=8, d_kv=64, d_ff=2048, layers=6, vocab=32128),  # T5-small-shaped, 60.5M
     "base": Shape(d_model=768, heads=12, d_kv=64, d_ff=3072, layers=12, vocab=32128),  # T5-base-shaped, 223M
+    # decoder-only, about T5-small's size: 14 layers x 3.2M + 16.4M tied embeddings = 61.3M
+    "causal": Shape(d_model=512, heads=8, d_kv=64, d_ff=1408, layers=14, vocab=32128, kind="causal"),
 }
 
 
@@ -121,6 +127,8 @@ def build_model(shape: Shape, out: Path) -> Path:
     tok.post_processor = processors.TemplateProcessing(single="$A </s>", special_tokens=[("</s>", EOS_ID)])
     tokenizer = PreTrainedTokenizerFast(tokenizer_object=tok, pad_token="<pad>", eos_token="</s>",
                                         unk_token="<unk>", model_max_length=512, padding_side="right")
+    if shape.kind == "causal":
+        return build_causal_model(shape, tokenizer, out)
     config = T5Config(vocab_size=shape.vocab, d_model=shape.d_model, d_kv=shape.d_kv, num_heads=shape.heads,
                       d_ff=shape.d_ff, num_layers=shape.layers, num_decoder_layers=shape.layers,
                       dropout_rate=0.0, pad_token_id=PAD_ID, eos_token_id=EOS_ID,
@@ -131,6 +139,21 @@ def build_model(shape: Shape, out: Path) -> Path:
     # exactly NEW_TOKENS tokens per reply for every variant (they all call generate with this config)
     model.generation_config = GenerationConfig(decoder_start_token_id=PAD_ID, pad_token_id=PAD_ID,
                                                eos_token_id=EOS_ID, min_new_tokens=NEW_TOKENS)
+    model.save_pretrained(out)
+    tokenizer.save_pretrained(out)
+    return out
+
+
+def build_causal_model(shape: Shape, tokenizer: PreTrainedTokenizerFast, out: Path) -> Path:
+    """A random Llama of the shape, with the same tokenizer (a prompt ending in </s> is still one prompt)."""
+    config = LlamaConfig(vocab_size=shape.vocab, hidden_size=shape.d_model, intermediate_size=shape.d_ff,
+                         num_hidden_layers=shape.layers, num_attention_heads=shape.heads,
+                         num_key_value_heads=shape.heads, tie_word_embeddings=True, pad_token_id=PAD_ID,
+                         eos_token_id=EOS_ID, bos_token_id=None, max_position_embeddings=512)
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(0)
+        model = LlamaForCausalLM(config).eval()
+    model.generation_config = GenerationConfig(pad_token_id=PAD_ID, eos_token_id=EOS_ID, min_new_tokens=NEW_TOKENS)
     model.save_pretrained(out)
     tokenizer.save_pretrained(out)
     return out
@@ -208,11 +231,13 @@ def instrument() -> None:
 
 
 def plain_generate(policy: Policy, ids: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
-    """The same sampling call as rollout.sample, without asking for logits or hidden states."""
-    return policy.lm.generate(input_ids=ids, attention_mask=mask, max_new_tokens=NEW_TOKENS, num_beams=1,
-                              do_sample=True, temperature=1.0, top_k=0, top_p=1.0,
-                              pad_token_id=policy.tokenizer.pad_token_id,
-                              eos_token_id=policy.tokenizer.eos_token_id)
+    """The same sampling call as rollout.sample, without asking for logits or hidden states; the same
+    sequences [B, 1 + T] (a causal model's from the prompt's last token)."""
+    seq = policy.lm.generate(input_ids=ids, attention_mask=mask, max_new_tokens=NEW_TOKENS, num_beams=1,
+                             do_sample=True, temperature=1.0, top_k=0, top_p=1.0,
+                             pad_token_id=policy.tokenizer.pad_token_id,
+                             eos_token_id=policy.tokenizer.eos_token_id)
+    return seq[:, ids.shape[1] - 1:] if policy.causal else seq
 
 
 @dataclass
@@ -261,14 +286,12 @@ def floor_step(s: Setup, step: int) -> dict[str, float]:
         seq = plain_generate(s.policy, ids, mask)
     decoder_input, response = seq[:, :-1], seq[:, 1:]
     with CLOCK.part("reference"), torch.no_grad(), lm.disable_adapter():
-        selective_log_softmax(lm(input_ids=ids, attention_mask=mask, decoder_input_ids=decoder_input,
-                                 use_cache=False).logits, response)
+        selective_log_softmax(s.policy.reply_logits(lm, ids, mask, decoder_input), response)
     order = torch.Generator().manual_seed(step)
     with CLOCK.part("update"):
         for _ in range(p.epochs):
             for idx in torch.randperm(len(s.prompts), generator=order).split(p.minibatch):
-                logits = lm(input_ids=ids[idx], attention_mask=mask[idx],
-                            decoder_input_ids=decoder_input[idx], use_cache=False).logits
+                logits = s.policy.reply_logits(lm, ids[idx], mask[idx], decoder_input[idx])
                 loss = -selective_log_softmax(logits, response[idx]).mean()
                 s.optimizer.zero_grad(set_to_none=True)
                 loss.backward()

@@ -321,3 +321,36 @@ def test_a_nan_step_keeps_the_clean_checkpoint_and_resume_is_exact(causal_models
     assert main(["run", str(config), "--resume", str(broken), "--quiet"]) == 0
     assert tiny_run.metrics_without_timing(broken) == tiny_run.metrics_without_timing(tmp_path / "clean")
     assert tiny_run.report_numbers(broken) == tiny_run.report_numbers(tmp_path / "clean")
+
+
+@pytest.mark.parametrize("targets", ["auto", "all-linear"])
+@pytest.mark.parametrize("arch", ARCHS)
+def test_estimate_counts_match_the_loaded_causal_policy(causal_models, tiny_models, arch: str, targets: str) -> None:
+    # the resource estimate reads a causal config: its LoRA count r * (d_in + d_out) (Hu et al. 2021) equals peft's,
+    # and its weight bytes (bf16 frozen linear layers, GPT-2's Conv1D included) what the loaded policy holds
+    from alignrun import budget
+    from alignrun.config import Experiment
+
+    cfg = Experiment.model_validate({
+        "base": {"model": str(causal_models[arch]), "precision": "bf16"}, "lora": {"rank": 4, "targets": targets},
+        "reward": {"backend": "callable", "source": f"{tiny_run.MODULE}:keyword_harm"}, "data": {"prompts": "x"}})
+    est = budget.estimate(cfg)
+    policy = build_policy(cfg.base, cfg.lora, cfg.reference, CPU)
+    assert est.lora_params == policy.trainable_params
+    assert est.total_params == policy.total_params
+    assert est.weights_mb * 1024 * 1024 == sum(p.numel() * p.element_size() for p in policy.net.parameters())
+    assert est.seconds_per_step > 0 and est.activations_mb > 0
+
+
+def test_bf16_stores_gpt2_conv1d_weights_in_bf16_and_still_samples(causal_models) -> None:
+    # GPT-2's projections are Conv1D, not nn.Linear: under base.precision = "bf16" they are halved like linear layers
+    from alignrun.models import autocast
+
+    policy = _policy(causal_models["gpt2"], precision="bf16")
+    attn = policy.lm.get_base_model().transformer.h[0].attn
+    assert attn.c_attn.base_layer.weight.dtype == attn.c_proj.weight.dtype == torch.bfloat16
+    assert policy.lm.get_input_embeddings().weight.dtype == torch.float32  # tied to the output projection: kept
+    torch.manual_seed(0)
+    with autocast("bf16", CPU):
+        ro = rollout(policy, PROMPTS[:4], 48, 6, CPU)
+    assert torch.isfinite(ro.logp).all() and torch.isfinite(ro.ref_logp).all() and ro.response_mask.sum() > 0
