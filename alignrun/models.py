@@ -119,9 +119,9 @@ def load_base(section: BaseSection, device: torch.device) -> tuple[nn.Module, Pr
     what = "causal (decoder-only)" if causal else "seq2seq (encoder-decoder)"
     saved_as = getattr(config, "architectures", None) or []  # e.g. a classifier of a family that also has an LM head
     if causal and section.kind == "auto" and saved_as and not set(saved_as) & set(MODEL_FOR_CAUSAL_LM_MAPPING_NAMES.values()):
-        raise UserError(f"base.model: {section.model} is a {config.model_type!r} model saved as {', '.join(saved_as)}, "
-                        "not an encoder-decoder or decoder-only language model that writes text; point base.model at a "
-                        "T5-, BART-style seq2seq or a GPT-2-, Llama-, Qwen-, Phi-style causal LM")
+        raise UserError(f"base.model: {section.model} is a {config.model_type!r} model, not an encoder-decoder or "
+                        f"decoder-only language model that writes text (saved as {', '.join(saved_as)}); point "
+                        "base.model at a T5-, BART-style seq2seq or a GPT-2-, Llama-, Qwen-, Phi-style causal LM")
     try:
         # fp32 whatever dtype the checkpoint was saved in: the adapters and the optimizer need it
         loader: Any = AutoModelForCausalLM if causal else AutoModelForSeq2SeqLM
