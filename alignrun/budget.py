@@ -78,7 +78,9 @@ def optimizer_bytes(trainable: int) -> int:
 
 def meta_model(cfg: Experiment) -> nn.Module:
     """The base architecture built on the meta device from its config: shapes only, no weights read."""
-    from transformers import AutoConfig, AutoModelForSeq2SeqLM
+    from transformers import AutoConfig, AutoModelForCausalLM, AutoModelForSeq2SeqLM
+
+    from alignrun.models import is_causal
 
     base = cfg.base
     try:
@@ -88,37 +90,43 @@ def meta_model(cfg: Experiment) -> nn.Module:
         raise UserError(f"base.model: cannot read the model config of {base.model!r} for the resource "
                         f"estimate ({str(exc).splitlines()[0]}); expected a local model folder or a cached "
                         "hub name") from None
-    if not getattr(config, "is_encoder_decoder", False):
-        raise UserError(f"base.model: {base.model} is a {config.model_type!r} model, not an encoder-decoder "
-                        "(seq2seq) language model")
-    with torch.device("meta"):
-        return AutoModelForSeq2SeqLM.from_config(config, trust_remote_code=base.trust_remote_code)
+    loader: Any = AutoModelForCausalLM if is_causal(base, config) else AutoModelForSeq2SeqLM
+    try:
+        with torch.device("meta"):
+            return loader.from_config(config, trust_remote_code=base.trust_remote_code)
+    except ValueError as exc:
+        raise UserError(f"base.model: {base.model} is a {config.model_type!r} model, not an encoder-decoder or "
+                        f"decoder-only language model ({str(exc).splitlines()[0]})") from None
 
 
 def lora_param_count(model: Any, targets: str | list[str], rank: int, scope: str = "encoder-decoder") -> int:
     """Sum of r * (d_in + d_out) over the adapted linear layers (Hu et al. 2021).
 
     targets: leaf module names, or "all-linear" (every linear layer except the output projection);
-    scope: "encoder-decoder", or "decoder" for the decoder stack's layers only.
+    scope: "encoder-decoder", or "decoder" for the decoder stack's layers only (a decoder-only model's whole stack).
     """
-    from alignrun.models import in_decoder
+    from alignrun.models import LINEAR, in_decoder
 
     output = model.get_output_embeddings() if hasattr(model, "get_output_embeddings") else None
+    encoder_decoder = getattr(getattr(model, "config", None), "is_encoder_decoder", True)
     total = 0
     for name, module in model.named_modules():
-        if not isinstance(module, nn.Linear) or module is output or (scope == "decoder" and not in_decoder(name)):
+        if not isinstance(module, LINEAR) or module is output or (
+                scope == "decoder" and encoder_decoder and not in_decoder(name)):
             continue
         if targets == "all-linear" or name.rsplit(".", 1)[-1] in targets:
-            total += rank * (module.in_features + module.out_features)
+            total += rank * sum(module.weight.shape)  # d_in + d_out, whichever way the weight is stored (Conv1D)
     return total
 
 
 def base_weight_bytes(model: Any, precision: str) -> int:
     """The base weights as alignrun holds them: all fp32, or under bf16 the linear layers at 2 bytes except an
     output projection tied to the input embeddings (4 and 2 bytes per weight: common practice)."""
+    from alignrun.models import LINEAR
+
     tied = model.get_input_embeddings().weight
     halved = {id(m.weight): m.weight.numel() for m in model.modules()
-              if precision == "bf16" and isinstance(m, nn.Linear) and m.weight is not tied}
+              if precision == "bf16" and isinstance(m, LINEAR) and m.weight is not tied}
     half = sum(halved.values())
     return weight_bytes(_params(model) - half, "fp32") + weight_bytes(half, "bf16")
 
@@ -139,11 +147,17 @@ class Dims:
     vocab: int
     enc_params: int  # encoder non-embedding parameters: forward FLOPs per encoder token / 2
     dec_params: int  # decoder non-embedding parameters + output projection: FLOPs per decoder token / 2
+    causal: bool = False  # decoder-only: the prompt runs through the decoder stack (no encoder: enc_* are 0)
 
 
-def model_dims(model: Any) -> Dims:  # a transformers seq2seq model (its typing is loose)
+def model_dims(model: Any) -> Dims:  # a transformers seq2seq or causal model (its typing is loose)
     c = model.config
     head = model.get_output_embeddings()
+    if not getattr(c, "is_encoder_decoder", False):
+        return Dims(d_model=c.hidden_size, d_ff=getattr(c, "intermediate_size", None) or getattr(c, "n_inner", None)
+                    or 4 * c.hidden_size, heads=int(c.num_attention_heads), enc_layers=0,
+                    dec_layers=int(c.num_hidden_layers), vocab=c.vocab_size, enc_params=0,
+                    dec_params=_params(model.get_decoder(), skip_embeddings=True) + head.weight.numel(), causal=True)
     return Dims(
         d_model=c.d_model, d_ff=getattr(c, "d_ff", None) or getattr(c, "encoder_ffn_dim", 4 * c.d_model),
         heads=int(getattr(c, "num_heads", None) or getattr(c, "encoder_attention_heads", None) or 1),
@@ -198,11 +212,22 @@ def step_work(d: Dims, cfg: Experiment, trainable: int) -> Work:
     Forward: 2 x non-embedding parameters x tokens (Kaplan et al. 2020). Backward through frozen weights
     needs only input gradients (another 2 x) plus weight gradients of the trainable ones (2 x trainable x
     tokens); with every weight trainable this gives the usual 3 x forward. With lora.scope = "decoder" the
-    encoder runs once per step and the reference and the updates run the decoder only.
+    encoder runs once per step and the reference and the updates run the decoder only. A decoder-only model
+    runs prompt and reply through its one stack in every pass (the output projection on reply positions only).
     """
     b, p, t = replies(cfg), cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens
     epochs, minibatches = cfg.ppo.epochs, cfg.ppo.prompts_per_step // cfg.ppo.minibatch
     trained_encoder = cfg.lora.scope != "decoder"
+    if d.causal:
+        body = d.dec_params - d.vocab * d.d_model  # the stack without the output projection
+        prefill = 2 * body * b * p  # sampling reads the prompt once (the output projection on its last token only)
+        forward = prefill + 2 * d.dec_params * b * t
+        backward = forward + 2 * trainable * b * (p + t)
+        layers = d.dec_layers + 1
+        passes = layers + t * layers + layers + epochs * minibatches * 3 * layers
+        return Work(batched_flops=prefill + forward + epochs * (forward + backward),
+                    decode_flops=2 * d.dec_params * b * t, layer_passes=passes, sampled_tokens=t,
+                    minibatches=epochs * minibatches)
     encode = 2 * d.enc_params * b * p  # sampling encodes the prompts once
     decode = 2 * d.dec_params * b * t  # then runs the decoder and output projection once per new token
     forward = encode * trained_encoder + 2 * d.dec_params * b * t
@@ -222,7 +247,8 @@ def activation_bytes(d: Dims, cfg: Experiment) -> int:
     b, mb = replies(cfg), cfg.ppo.minibatch * cfg.method.samples_per_prompt
     p, t = cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens
     enc = mb * p * d.enc_layers * (8 * d.d_model + 2 * d.d_ff + 2 * d.heads * p) * (cfg.lora.scope != "decoder")
-    dec = mb * t * d.dec_layers * (12 * d.d_model + 2 * d.d_ff + 2 * d.heads * (t + p))
+    seq = t + p * d.causal  # a decoder-only model keeps the prompt's activations too
+    dec = mb * seq * d.dec_layers * (12 * d.d_model + 2 * d.d_ff + 2 * d.heads * (t + p))
     update = 4 * (enc + dec + LOGITS_COPIES_UPDATE * mb * t * d.vocab)
     rollout = 4 * LOGITS_COPIES_ROLLOUT * b * t * d.vocab
     return max(update, rollout)

@@ -52,9 +52,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", help="run folder (default runs/demo)")
     p.add_argument("--overwrite", action="store_true", help="replace a run already in the run folder")
     p.add_argument("--quick", action="store_true", help="fewer steps and prompts (the CI-sized demo)")
+    p.add_argument("--causal", action="store_true",
+                   help="a decoder-only (Llama-shaped) base built from the same scenario (configs/causal-demo.toml)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
-                   help="override a key of configs/demo.toml")
+                   help="override a key of configs/demo.toml (with --causal, configs/causal-demo.toml)")
 
     p = sub.add_parser("sweep", help="run one trial per point of the config's [sweep] grid",
                        description="Run every combination in [sweep].grid (times [sweep].seeds) as a normal "
@@ -114,7 +116,7 @@ def _dispatch(args: argparse.Namespace) -> int:
         from alignrun.demo.run import run_demo
 
         return run_demo(out=args.out, quick=args.quick, quiet=args.quiet, overrides=args.overrides,
-                        overwrite=args.overwrite)
+                        overwrite=args.overwrite, causal=args.causal)
     if args.command == "sweep":
         from alignrun.sweep import run_sweep
 

@@ -32,9 +32,15 @@ class Section(BaseModel):
 
 
 class BaseSection(Section):
-    """[base] the seq2seq model the adapters are trained on."""
+    """[base] the language model the adapters are trained on: encoder-decoder (seq2seq) or decoder-only (causal)."""
 
-    model: str = Field(min_length=1, description="local folder or hub name of an encoder-decoder LM")
+    model: str = Field(min_length=1, description="local folder or hub name of an encoder-decoder or decoder-only LM")
+    kind: Literal["auto", "seq2seq", "causal"] = Field(
+        "auto", description="auto reads the model config (is_encoder_decoder); set it only to override that")
+    prompt_format: Literal["plain", "chat"] = Field(
+        "plain", description="causal models: plain = the prompt text then prompt_separator; chat = the tokenizer's "
+        "chat template with the prompt as one user turn and the assistant turn opened")
+    prompt_separator: str = Field("\n", description="causal models, plain format: text put between prompt and reply")
     revision: str | None = Field(None, description="hub revision (branch, tag or commit)")
     trust_remote_code: bool = Field(False, description="run model code shipped with the weights (code execution)")
     device: Literal["auto", "cpu", "cuda"] = Field("auto", description="auto uses a GPU only when one is present")
@@ -56,7 +62,8 @@ class LoraSection(Section):
     targets: str | list[str] = Field("auto", description='"auto" (query/value projections), "all-linear", or module names')
     scope: Literal["decoder", "encoder-decoder"] = Field(
         "decoder", description="which stacks get adapters; with 'decoder' the frozen encoder runs once per step and its "
-        "output is reused by sampling, the reference and every PPO epoch (about a third less compute per step)"
+        "output is reused by sampling, the reference and every PPO epoch (about a third less compute per step); "
+        "a decoder-only model is one decoder stack, so 'decoder' is its whole stack and 'encoder-decoder' is refused"
     )
 
 

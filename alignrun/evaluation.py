@@ -14,8 +14,8 @@ import torch
 
 from alignrun import metrics
 from alignrun.config import Experiment
-from alignrun.models import Policy, encoder_outputs
-from alignrun.rollout import encode_prompts, frozen_encoding, response_mask, sample
+from alignrun.models import Policy
+from alignrun.rollout import frozen_encoding, response_mask, sample
 from alignrun.runfolder import write_jsonl_atomic
 from alignrun.verdict import alarms, judge_is_reward, preflight_forced, verdict
 
@@ -51,18 +51,16 @@ def _generate(policy: Policy, prompts: list[str], cfg: Experiment, device: torch
     ids_out: list[list[int]] = []
     sums: dict[str, list[torch.Tensor]] = {k: [] for k in ("logp", "kl", "kl_exact", "ref_nll", "tokens")}
     for i in range(0, len(prompts), CHUNK):
-        ids, mask = encode_prompts(tok, prompts[i: i + CHUNK], cfg.generation.max_prompt_tokens, device)
+        ids, mask = policy.encode(prompts[i: i + CHUNK], cfg.generation.max_prompt_tokens, device)
         hidden = frozen_encoding(policy, ids, mask)
         seqs, _, _ = sample(policy, ids, mask, cfg.generation.max_new_tokens, do_sample=do_sample,
                             with_values=False, encoder_hidden=hidden)
         resp = seqs[:, 1:]
         m = response_mask(resp, tok.eos_token_id)
         resp = torch.where(m.bool(), resp, torch.full_like(resp, tok.pad_token_id))
-        forward = dict(input_ids=ids, attention_mask=mask, decoder_input_ids=seqs[:, :-1],
-                       encoder_outputs=encoder_outputs(hidden), use_cache=False)
-        logp_all = torch.log_softmax(policy.lm(**forward).logits.float(), -1)
+        logp_all = torch.log_softmax(policy.reply_logits(policy.lm, ids, mask, seqs[:, :-1], hidden).float(), -1)
         with policy.reference() as reference:
-            ref_all = torch.log_softmax(reference(**forward).logits.float(), -1)
+            ref_all = torch.log_softmax(policy.reply_logits(reference, ids, mask, seqs[:, :-1], hidden).float(), -1)
         logp = logp_all.gather(-1, resp.unsqueeze(-1)).squeeze(-1)
         ref = ref_all.gather(-1, resp.unsqueeze(-1)).squeeze(-1)
         exact = torch.stack([torch.from_numpy(metrics.next_token_kl(a.cpu().numpy(), b.cpu().numpy()))

@@ -1,4 +1,12 @@
-"""Models: the seq2seq base, LoRA adapters (Hu et al. 2021), the value head, the frozen reference, export."""
+"""Models: the base (encoder-decoder or decoder-only), LoRA adapters (Hu et al. 2021), the value head, the frozen
+reference, export. `Policy` is the one interface the loop uses; the two kinds of base differ only here:
+
+    seq2seq  prompt -> encoder; reply positions fed the decoder start token + reply[:-1]
+    causal   prompt (formatted, left-padded) + reply[:-1] in one sequence, position ids counted over real tokens;
+             the logits and hidden states of the last T positions belong to the reply
+
+In both, `decoder_input` [B, T] holds the token fed at each reply position (seq2seq: the start token first; causal:
+the prompt's last token first), so rollout, evaluation and the trainer never ask which kind they drive."""
 
 from __future__ import annotations
 
@@ -22,12 +30,15 @@ from safetensors.torch import load_file, save_file
 from torch import nn
 from transformers import (
     AutoConfig,
+    AutoModelForCausalLM,
     AutoModelForSeq2SeqLM,
     AutoTokenizer,
     GenerationConfig,
     PreTrainedTokenizerBase,
 )
 from transformers.modeling_outputs import BaseModelOutput
+from transformers.models.auto.modeling_auto import MODEL_FOR_CAUSAL_LM_MAPPING_NAMES
+from transformers.pytorch_utils import Conv1D
 from trl.trainer.utils import disable_dropout_in_model
 
 from alignrun.config import BaseSection, LoraSection, ReferenceSection
@@ -42,6 +53,12 @@ QUERY_VALUE = {
     "marian": ["q_proj", "v_proj"], "blenderbot": ["q_proj", "v_proj"], "blenderbot-small": ["q_proj", "v_proj"],
     "m2m_100": ["q_proj", "v_proj"], "nllb-moe": ["q_proj", "v_proj"], "plbart": ["q_proj", "v_proj"],
     "pegasus_x": ["q_proj", "v_proj"], "led": ["q_proj", "v_proj"], "bigbird_pegasus": ["q_proj", "v_proj"],
+    # decoder-only: GPT-2's query/key/value are one fused Conv1D (adapting it adapts k too); Phi-3's one fused Linear
+    "gpt2": ["c_attn"], "phi3": ["qkv_proj"], "gpt_neox": ["query_key_value"], "falcon": ["query_key_value"],
+    "bloom": ["query_key_value"],
+    **{family: ["q_proj", "v_proj"] for family in (
+        "llama", "mistral", "mixtral", "qwen2", "qwen3", "gemma", "gemma2", "gemma3_text", "phi", "olmo", "olmo2",
+        "opt", "gpt_neo", "gptj", "stablelm", "starcoder2", "granite", "smollm3", "cohere")},
 }
 
 
@@ -84,8 +101,14 @@ def _hub_hint(source: str, exc: Exception) -> str:
             "and point base.model at the folder")
 
 
+def is_causal(section: BaseSection, config: Any) -> bool:
+    """Decoder-only unless the config says encoder-decoder; base.kind overrides the config."""
+    return section.kind == "causal" or section.kind == "auto" and not getattr(config, "is_encoder_decoder", False)
+
+
 def load_base(section: BaseSection, device: torch.device) -> tuple[nn.Module, PreTrainedTokenizerBase]:
-    """The encoder-decoder base and its tokenizer; refuses decoder-only or non-LM folders clearly."""
+    """The base (seq2seq or causal LM, from its config) and its tokenizer; refuses non-LM folders clearly. A causal
+    model's tokenizer pads and truncates on the left (the prompt's end, where the reply starts, is kept)."""
     if section.trust_remote_code:
         print("alignrun: WARNING base.trust_remote_code = true: code shipped with the model will run", flush=True)
     kwargs = {"revision": section.revision, "trust_remote_code": section.trust_remote_code}
@@ -93,14 +116,21 @@ def load_base(section: BaseSection, device: torch.device) -> tuple[nn.Module, Pr
         config = AutoConfig.from_pretrained(section.model, **kwargs)
     except (OSError, ValueError) as exc:
         raise UserError(f"base.model: {_hub_hint(section.model, exc)}") from None
-    if not getattr(config, "is_encoder_decoder", False):
-        raise UserError(f"base.model: {section.model} is a {config.model_type!r} model, not an encoder-decoder "
-                        "(seq2seq) language model; alignrun trains T5-, BART-, Pegasus-style models")
+    causal = is_causal(section, config)
+    what = "causal (decoder-only)" if causal else "seq2seq (encoder-decoder)"
+    saved_as = getattr(config, "architectures", None) or []  # e.g. a classifier of a family that also has an LM head
+    if causal and section.kind == "auto" and saved_as and not set(saved_as) & set(MODEL_FOR_CAUSAL_LM_MAPPING_NAMES.values()):
+        raise UserError(f"base.model: {section.model} is a {config.model_type!r} model, not an encoder-decoder or "
+                        f"decoder-only language model that writes text (saved as {', '.join(saved_as)}); point "
+                        "base.model at a T5-, BART-style seq2seq or a GPT-2-, Llama-, Qwen-, Phi-style causal LM")
     try:
         # fp32 whatever dtype the checkpoint was saved in: the adapters and the optimizer need it
-        model = AutoModelForSeq2SeqLM.from_pretrained(section.model, dtype=torch.float32, **kwargs)
+        loader: Any = AutoModelForCausalLM if causal else AutoModelForSeq2SeqLM
+        model = loader.from_pretrained(section.model, dtype=torch.float32, **kwargs)
     except ValueError as exc:
-        raise UserError(f"base.model: {section.model} cannot be loaded as a seq2seq language model: {exc}") from None
+        raise UserError(f"base.model: {section.model} is a {config.model_type!r} model and cannot be loaded as a {what} "
+                        f"language model ({_first_line(exc)}); alignrun trains T5-, BART-style encoder-decoders and "
+                        "GPT-2-, Llama-, Qwen-, Phi-style decoder-only LMs") from None
     except Exception as exc:  # safetensors/torch errors from a truncated or overwritten weights file
         raise UserError(f"base.model: {_named_files(section.model, ('*.safetensors', '*.bin'))} cannot be read "
                         f"({_first_line(exc)}); the weights file is damaged or incomplete: copy or save the model "
@@ -115,8 +145,18 @@ def load_base(section: BaseSection, device: torch.device) -> tuple[nn.Module, Pr
         raise UserError(f"base.model: the tokenizer in {_named_files(section.model, _TOKENIZER_FILES)} cannot be "
                         f"read ({_first_line(exc)}); the file is damaged: save the tokenizer into the model folder "
                         "again with tokenizer.save_pretrained(folder)") from None
-    if tokenizer.pad_token_id is None or tokenizer.eos_token_id is None:
-        raise UserError(f"base.model: the tokenizer of {section.model} needs pad and eos tokens")
+    if tokenizer.eos_token_id is None:
+        raise UserError(f"base.model: the tokenizer of {section.model} has no end-of-sequence (eos) token; replies "
+                        "could never end. Set tokenizer.eos_token and save the tokenizer into the model folder again")
+    if tokenizer.pad_token_id is None:
+        if not causal:
+            raise UserError(f"base.model: the tokenizer of {section.model} needs a pad token")
+        # Safe because padding is read from the attention mask and a reply ends at its first EOS (rollout.response_mask)
+        tokenizer.pad_token = tokenizer.eos_token
+        print(f"alignrun: the tokenizer of {section.model} has no pad token; padding with its eos token "
+              f"{tokenizer.eos_token!r} (padding is masked by position, never recognised by token)", flush=True)
+    if causal:
+        tokenizer.padding_side = tokenizer.truncation_side = "left"
     return model.to(device), tokenizer
 
 
@@ -131,8 +171,11 @@ def _first_line(exc: BaseException) -> str:
     return (str(exc).strip().splitlines() or [type(exc).__name__])[0]
 
 
+LINEAR = (nn.Linear, Conv1D)  # GPT-2's projections are transformers' Conv1D: a linear layer with its weight transposed
+
+
 def linear_leaf_names(model: nn.Module) -> list[str]:
-    return sorted({name.rsplit(".", 1)[-1] for name, m in model.named_modules() if isinstance(m, nn.Linear)})
+    return sorted({name.rsplit(".", 1)[-1] for name, m in model.named_modules() if isinstance(m, LINEAR)})
 
 
 def lora_targets(model: nn.Module, spec: str | list[str]) -> str | list[str]:
@@ -158,7 +201,7 @@ def lora_targets(model: nn.Module, spec: str | list[str]) -> str | list[str]:
 
 
 class ValueHead(nn.Module):
-    """A scalar value per decoder position from the decoder's last hidden state."""
+    """A scalar value per reply position from the decoder stack's last hidden state."""
 
     def __init__(self, hidden: int):
         super().__init__()
@@ -171,25 +214,43 @@ class ValueHead(nn.Module):
 
 
 class PolicyWithValue(nn.Module):
-    """LoRA-wrapped seq2seq policy plus value head; one forward gives logits and values."""
+    """LoRA-wrapped policy plus value head; one forward gives the reply positions' logits and values."""
 
-    def __init__(self, lm: PeftModel, value_head: ValueHead):
+    def __init__(self, lm: PeftModel, value_head: ValueHead, causal: bool):
         super().__init__()
         self.lm = lm
         self.value_head = value_head
+        self.causal = causal
 
     def forward(self, input_ids: torch.Tensor, attention_mask: torch.Tensor, decoder_input_ids: torch.Tensor,
                 encoder_hidden: torch.Tensor | None = None) -> tuple[torch.Tensor, torch.Tensor]:
+        """Prompt ids/mask [B, P] and the reply positions' inputs [B, T] -> (logits [B, T, V], values [B, T])."""
         with decoder_states(self.lm) as states:
-            logits = self.lm(input_ids=input_ids, attention_mask=attention_mask, decoder_input_ids=decoder_input_ids,
-                             encoder_outputs=encoder_outputs(encoder_hidden), use_cache=False).logits
-        return logits, self.value_head(states[0])
+            logits = reply_logits(self.lm, self.causal, input_ids, attention_mask, decoder_input_ids, encoder_hidden)
+        return logits, self.value_head(states[0][:, -decoder_input_ids.shape[1]:])
+
+
+def reply_logits(model: nn.Module, causal: bool, prompt_ids: torch.Tensor, prompt_mask: torch.Tensor,
+                 decoder_input: torch.Tensor, encoder_hidden: torch.Tensor | None = None) -> torch.Tensor:
+    """Teacher-forced logits at the reply positions [B, T, V] of any model of the policy's kind (policy, reference).
+
+    Causal: the left-padded prompt and the reply in one sequence (decoder_input = the prompt's last token +
+    reply[:-1]); position ids count real tokens only, as generate() numbers them under left padding."""
+    if not causal:
+        return model(input_ids=prompt_ids, attention_mask=prompt_mask, decoder_input_ids=decoder_input,
+                     encoder_outputs=encoder_outputs(encoder_hidden), use_cache=False).logits
+    ids = torch.cat([prompt_ids, decoder_input[:, 1:]], dim=1)
+    mask = torch.cat([prompt_mask, torch.ones_like(decoder_input[:, 1:])], dim=1)
+    positions = (mask.cumsum(1) - 1).clamp(min=0)
+    return model(input_ids=ids, attention_mask=mask, position_ids=positions, use_cache=False,
+                 logits_to_keep=decoder_input.shape[1]).logits
 
 
 @contextmanager
 def decoder_states(lm: nn.Module) -> Iterator[list[torch.Tensor]]:
-    """The decoder stack's last hidden state from each of its calls inside the block (one per generation step):
-    the value head's input, without keeping every layer's states as output_hidden_states would."""
+    """The decoder stack's last hidden state from each of its calls inside the block (one per generation step; a
+    causal model's first call covers the whole prompt): the value head's input, without keeping every layer's
+    states as output_hidden_states would. For a causal LM get_decoder() is its body, final norm included."""
     kept: list[torch.Tensor] = []
     hook = lm.get_decoder().register_forward_hook(lambda module, args, out: kept.append(out[0]))  # type: ignore[operator]
     try:
@@ -211,10 +272,47 @@ class Policy:
     trainable_params: int
     total_params: int
     encoder_frozen: bool = False  # no adapter in the encoder: its output is computed once per batch and reused
+    prompt_format: str = "plain"  # causal: "plain" (prompt + separator) or "chat" (the tokenizer's chat template)
+    prompt_separator: str = ""
 
     @property
     def lm(self) -> PeftModel:
         return self.net.lm
+
+    @property
+    def causal(self) -> bool:
+        return self.net.causal
+
+    def describe(self) -> str:
+        """One line for the run output: the kind of base and how prompts reach it."""
+        kind = getattr(self.lm.config, "model_type", "")
+        if not self.causal:
+            return f"encoder-decoder {kind} model; the prompt is the encoder's input"
+        shown = "the tokenizer's chat template" if self.prompt_format == "chat" else \
+            f"plain text + separator {self.prompt_separator!r}"
+        return (f"decoder-only {kind} model; prompts as {shown}, left-padded; log-probs, KL, values and rewards "
+                "cover the reply tokens only")
+
+    def prompt_texts(self, prompts: list[str]) -> list[str]:
+        """The text each prompt is encoded as: itself (seq2seq); with the separator or in the chat template (causal)."""
+        if not self.causal:
+            return prompts
+        if self.prompt_format == "plain":
+            return [p + self.prompt_separator for p in prompts]
+        return [str(self.tokenizer.apply_chat_template([{"role": "user", "content": p}], tokenize=False,
+                                                       add_generation_prompt=True)) for p in prompts]
+
+    def encode(self, prompts: list[str], max_tokens: int, device: torch.device) -> tuple[torch.Tensor, torch.Tensor]:
+        """Prompt ids and attention mask [B, P], padded (causal: left-padded, truncated from the left)."""
+        # a chat template writes its own special tokens; adding the tokenizer's (a second BOS) would change the text
+        enc = self.tokenizer(self.prompt_texts(prompts), return_tensors="pt", padding=True, truncation=True,
+                             max_length=max_tokens, add_special_tokens=self.prompt_format != "chat" or not self.causal)
+        return enc["input_ids"].to(device), enc["attention_mask"].to(device)
+
+    def reply_logits(self, model: nn.Module, prompt_ids: torch.Tensor, prompt_mask: torch.Tensor,
+                     decoder_input: torch.Tensor, encoder_hidden: torch.Tensor | None = None) -> torch.Tensor:
+        """Teacher-forced reply logits [B, T, V] of `model` (policy.lm or the reference)."""
+        return reply_logits(model, self.causal, prompt_ids, prompt_mask, decoder_input, encoder_hidden)
 
     @contextmanager
     def reference(self) -> Iterator[nn.Module]:
@@ -237,7 +335,7 @@ def _decoder_only(model: nn.Module, targets: str | list[str]) -> str:
     """A peft target pattern for the chosen linear layers of the decoder stack only."""
     output = model.get_output_embeddings()  # type: ignore[operator]
     leaves = sorted({name.rsplit(".", 1)[-1] for name, m in model.named_modules()
-                     if isinstance(m, nn.Linear) and m is not output and in_decoder(name)
+                     if isinstance(m, LINEAR) and m is not output and in_decoder(name)
                      and (targets == "all-linear" or name.rsplit(".", 1)[-1] in targets)})
     if not leaves:
         named = targets if isinstance(targets, str) else ", ".join(targets)
@@ -247,11 +345,21 @@ def _decoder_only(model: nn.Module, targets: str | list[str]) -> str:
 
 
 def wrap_lora(model: nn.Module, lora: LoraSection) -> PeftModel:
-    """W' = W + (alpha/r) B A with B = 0 at the start, so the policy equals the base at step 0 (Hu et al. 2021)."""
+    """W' = W + (alpha/r) B A with B = 0 at the start, so the policy equals the base at step 0 (Hu et al. 2021).
+
+    A decoder-only model is one decoder stack: lora.scope = "decoder" adapts the chosen layers wherever they sit."""
     targets = lora_targets(model, lora.targets)
-    peft_cfg = LoraConfig(task_type=TaskType.SEQ_2_SEQ_LM, r=lora.rank, lora_alpha=lora.alpha,  # type: ignore[arg-type]
-                          lora_dropout=lora.dropout,
-                          target_modules=_decoder_only(model, targets) if lora.scope == "decoder" else targets)
+    causal = not getattr(model.config, "is_encoder_decoder", False)
+    if causal and lora.scope != "decoder":
+        raise UserError(f"lora.scope = {lora.scope!r}: this {getattr(model.config, 'model_type', '')} model is "
+                        "decoder-only and has no encoder; use lora.scope = 'decoder' (its whole stack)")
+    chosen = [m for name, m in model.named_modules()
+              if targets == "all-linear" or name.rsplit(".", 1)[-1] in targets]
+    peft_cfg = LoraConfig(task_type=TaskType.CAUSAL_LM if causal else TaskType.SEQ_2_SEQ_LM,
+                          r=lora.rank, lora_alpha=lora.alpha, lora_dropout=lora.dropout,  # type: ignore[arg-type]
+                          # Conv1D stores W transposed (GPT-2): peft must know, or A and B take the wrong shapes
+                          fan_in_fan_out=any(isinstance(m, Conv1D) for m in chosen),
+                          target_modules=targets if causal or lora.scope != "decoder" else _decoder_only(model, targets))
     lm = get_peft_model(model, peft_cfg)
     lm.eval()  # dropout stays off in rollouts and updates alike
     return lm
@@ -263,7 +371,7 @@ def store_frozen_linear_in_bf16(model: nn.Module) -> None:
     an output projection tied to them, norms and the value head stay fp32."""
     tied = model.get_input_embeddings().weight  # type: ignore[operator]
     for module in model.modules():
-        if isinstance(module, nn.Linear) and not module.weight.requires_grad and module.weight is not tied:
+        if isinstance(module, LINEAR) and not module.weight.requires_grad and module.weight is not tied:
             fp32 = module.weight
             module.weight = nn.Parameter(fp32.detach().to(torch.bfloat16), requires_grad=False)
             _page_out(fp32)
@@ -301,7 +409,10 @@ def neutral_generation_settings(model: nn.Module, tokenizer: PreTrainedTokenizer
     stores the raw log-probs: samples would no longer come from the policy whose log-probs are kept."""
     config: Any = model.config
     saved: Any = model.generation_config
-    start = saved.decoder_start_token_id if saved.decoder_start_token_id is not None else config.decoder_start_token_id
+    start = saved.decoder_start_token_id if saved.decoder_start_token_id is not None else \
+        getattr(config, "decoder_start_token_id", None)
+    if not getattr(config, "is_encoder_decoder", False):
+        start = None  # a decoder-only model continues the prompt: there is no decoder start token
     return GenerationConfig(decoder_start_token_id=start, bos_token_id=saved.bos_token_id,
                             eos_token_id=tokenizer.eos_token_id, pad_token_id=tokenizer.pad_token_id)
 
@@ -309,6 +420,10 @@ def neutral_generation_settings(model: nn.Module, tokenizer: PreTrainedTokenizer
 def build_policy(base: BaseSection, lora: LoraSection, reference: ReferenceSection,
                  device: torch.device) -> Policy:
     model, tokenizer = load_base(base, device)
+    causal = not getattr(model.config, "is_encoder_decoder", False)
+    if causal and base.prompt_format == "chat" and not tokenizer.chat_template:
+        raise UserError(f"base.prompt_format = 'chat': the tokenizer of {base.model} has no chat template; use "
+                        "prompt_format = 'plain' (prompt + base.prompt_separator) or a tokenizer that has one")
     model.generation_config = neutral_generation_settings(model, tokenizer)  # type: ignore[assignment]
     disable_dropout_in_model(model)  # STACK-NOTES: dropout makes policy and reference differ at step 0
     ref_copy = None
@@ -323,8 +438,9 @@ def build_policy(base: BaseSection, lora: LoraSection, reference: ReferenceSecti
     head = ValueHead(int(getattr(config, "d_model", None) or config.hidden_size)).to(device)
     trainable = sum(p.numel() for p in lm.parameters() if p.requires_grad)
     total = sum(p.numel() for p in lm.parameters())
-    encoder_frozen = not any(p.requires_grad for p in lm.get_encoder().parameters())
-    return Policy(PolicyWithValue(lm, head), tokenizer, ref_copy, trainable, total, encoder_frozen)
+    encoder_frozen = not causal and not any(p.requires_grad for p in lm.get_encoder().parameters())
+    return Policy(PolicyWithValue(lm, head, causal), tokenizer, ref_copy, trainable, total, encoder_frozen,
+                  base.prompt_format, base.prompt_separator)
 
 
 def save_adapter(policy: Policy, folder: Path) -> None:

@@ -4,6 +4,7 @@ Old log-probs and old values come from the generation pass itself (its raw logit
 states), which equals a teacher-forced forward within 1e-6 in eval mode (STACK-NOTES), so no second policy
 forward is paid. Reference log-probs come from one batched no-grad pass with the adapters disabled. When the
 encoder has no adapter (lora.scope = "decoder") its output is computed once and kept for the PPO epochs.
+Encoder-decoder and decoder-only bases differ only inside `models.Policy` (see models' docstring).
 """
 
 from __future__ import annotations
@@ -20,9 +21,9 @@ from alignrun.models import Policy, decoder_states, encoder_outputs
 
 @dataclass
 class Rollout:
-    prompt_ids: torch.Tensor       # [B, P]
+    prompt_ids: torch.Tensor       # [B, P] (causal: left-padded)
     prompt_mask: torch.Tensor      # [B, P]
-    decoder_input: torch.Tensor    # [B, T] start token + response[:-1]
+    decoder_input: torch.Tensor    # [B, T] start token (causal: the prompt's last token) + response[:-1]
     response_ids: torch.Tensor     # [B, T] padded after EOS
     response_mask: torch.Tensor    # [B, T] float, 1 on real tokens including EOS
     logp: torch.Tensor             # [B, T] policy log-probs at sampling time
@@ -42,6 +43,8 @@ _TENSORS = ("prompt_ids", "prompt_mask", "decoder_input", "response_ids", "respo
 
 def encode_prompts(tokenizer: PreTrainedTokenizerBase, prompts: list[str], max_tokens: int,
                    device: torch.device) -> tuple[torch.Tensor, torch.Tensor]:
+    """Prompts as they are, with the tokenizer's special tokens (a seq2seq encoder's input); `Policy.encode` also
+    formats a causal model's prompts."""
     enc = tokenizer(prompts, return_tensors="pt", padding=True, truncation=True, max_length=max_tokens)
     return enc["input_ids"].to(device), enc["attention_mask"].to(device)
 
@@ -53,9 +56,11 @@ def response_mask(response_ids: torch.Tensor, eos_id: int) -> torch.Tensor:
     return (~after_eos).float()
 
 
-def decoder_start(policy: Policy) -> int:
-    """The decoder start token (models.neutral_generation_settings kept it from the saved settings or config)."""
-    return int(policy.lm.generation_config.decoder_start_token_id)
+def decoder_start(policy: Policy) -> int | None:
+    """The decoder start token (models.neutral_generation_settings kept it from the saved settings or config);
+    None for a decoder-only model, which continues the prompt."""
+    start = policy.lm.generation_config.decoder_start_token_id
+    return None if policy.causal else int(start)
 
 
 @torch.no_grad()
@@ -86,8 +91,9 @@ def sample(policy: Policy, prompt_ids: torch.Tensor, prompt_mask: torch.Tensor, 
     """Sample at temperature 1 from the raw distribution (or take its argmax), so the stored log-probs are those
     of the distribution the tokens were drawn from (Huang et al. 2024, sampling details; from memory).
 
-    Returns (sequences [B, 1 + T] starting with the decoder start token, log-probs [B, T], values [B, T] or None).
-    Raises UserError when generation changed the distribution (a logits processor was active)."""
+    Returns (sequences [B, 1 + T] starting with the decoder start token (causal: the prompt's last token), log-probs
+    [B, T], values [B, T] or None). Raises UserError when generation changed the distribution (a logits processor
+    was active)."""
     reuse = {} if encoder_hidden is None else {"encoder_outputs": encoder_outputs(encoder_hidden)}
     with decoder_states(policy.lm) as states:
         out = policy.lm.generate(input_ids=prompt_ids, attention_mask=prompt_mask,
@@ -96,13 +102,15 @@ def sample(policy: Policy, prompt_ids: torch.Tensor, prompt_mask: torch.Tensor, 
         raise UserError(f"base.model: generating with {policy.lm.config.name_or_path} changed the model's "
                         "distribution (a logits processor was active), so the stored log-probs would not be those of "
                         "the sampled tokens; alignrun needs a model whose generate() honours its generation_config")
-    sequences = out.sequences  # [B, 1 + T], starting with the decoder start token
+    # [B, 1 + T]: a causal model's output repeats the prompt; its last token is where the reply starts
+    sequences = out.sequences[:, prompt_ids.shape[1] - 1:] if policy.causal else out.sequences
     # log-softmax at the sampled token, z_a - logsumexp(z), step by step from the raw logits: no [B, T, V] copy
     logp = torch.stack([step.float().gather(1, token[:, None]).squeeze(1) - torch.logsumexp(step.float(), dim=-1)
                         for step, token in zip(out.logits, sequences[:, 1:].T, strict=True)], dim=1)
     values = None
     if with_values:
-        hidden = torch.cat(states[: len(out.logits)], dim=1)  # [B, T, H] the decoder's last layer, step by step
+        # [B, T, H] the decoder's last layer step by step (a causal model's first step covers the whole prompt)
+        hidden = torch.cat([states[0][:, -1:], *states[1: len(out.logits)]], dim=1)
         values = policy.net.value_head(hidden).float()
     return sequences, logp, values
 
@@ -112,8 +120,7 @@ def reference_logprobs(policy: Policy, prompt_ids: torch.Tensor, prompt_mask: to
                        decoder_input: torch.Tensor, response_ids: torch.Tensor,
                        encoder_hidden: torch.Tensor | None = None) -> torch.Tensor:
     with policy.reference() as ref:
-        logits = ref(input_ids=prompt_ids, attention_mask=prompt_mask, decoder_input_ids=decoder_input,
-                     encoder_outputs=encoder_outputs(encoder_hidden), use_cache=False).logits
+        logits = policy.reply_logits(ref, prompt_ids, prompt_mask, decoder_input, encoder_hidden)
     return selective_log_softmax(logits.float(), response_ids)
 
 
@@ -127,7 +134,7 @@ def rollout(policy: Policy, prompts: list[str], max_prompt_tokens: int, max_new_
     replies (metrics.jsonl `truncated_share`); a high share means max_new_tokens cuts replies short.
     """
     tok = policy.tokenizer
-    prompt_ids, prompt_mask = encode_prompts(tok, prompts, max_prompt_tokens, device)
+    prompt_ids, prompt_mask = policy.encode(prompts, max_prompt_tokens, device)
     hidden = frozen_encoding(policy, prompt_ids, prompt_mask)
     sequences, logp, values = sample(policy, prompt_ids, prompt_mask, max_new_tokens, encoder_hidden=hidden)
     assert values is not None

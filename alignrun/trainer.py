@@ -342,7 +342,7 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
             seed_everything(cfg.run.seed + 1_000_003 * accelerator.process_index)
         if not quiet and main:
             print(f"policy: {policy.trainable_params:,} trainable of {policy.total_params:,} parameters "
-                  f"({100 * policy.trainable_params / policy.total_params:.2f}%)", flush=True)
+                  f"({100 * policy.trainable_params / policy.total_params:.2f}%); {policy.describe()}", flush=True)
         heldout = split.heldout[: cfg.evaluation.max_prompts or None]
         stage = "before-training evaluation"
         before = _evaluate_once(out / "eval_before.jsonl", policy, heldout, scorer, judge, cfg, device, main, quiet,

@@ -32,7 +32,14 @@ if os.environ.get("ALIGNRUN_BENCH_DEFAULTS") != "old":
 
 import torch  # noqa: E402
 from tokenizers import Tokenizer, models, pre_tokenizers, processors  # noqa: E402
-from transformers import GenerationConfig, PreTrainedTokenizerFast, T5Config, T5ForConditionalGeneration  # noqa: E402
+from transformers import (  # noqa: E402
+    GenerationConfig,
+    LlamaConfig,
+    LlamaForCausalLM,
+    PreTrainedTokenizerFast,
+    T5Config,
+    T5ForConditionalGeneration,
+)
 
 from alignrun import budget  # noqa: E402
 
@@ -134,6 +141,8 @@ SHAPES = {
     "tiny": Shape(d_model=128, heads=4, d_kv=32, d_ff=512, layers=2, vocab=8000),  # 2.0M parameters
     "small": Shape(d_model=512, heads=8, d_kv=64, d_ff=2048, layers=6, vocab=32128),  # T5-small-shaped, 60.5M
     "base": Shape(d_model=768, heads=12, d_kv=64, d_ff=3072, layers=12, vocab=32128),  # T5-base-shaped, 223M
+    # decoder-only, about T5-small's size: 14 layers x 3.2M + 16.4M tied embeddings = 61.3M (d_ff: SwiGLU width)
+    "causal": Shape(d_model=512, heads=8, d_kv=64, d_ff=1408, layers=14, vocab=32128, arch="llama"),
 }
 
 
@@ -179,7 +188,22 @@ def build_t5(shape: Shape, out: Path) -> Path:
     return out
 
 
-BUILDERS: dict[str, Callable[[Shape, Path], Path]] = {"t5": build_t5}  # a new architecture: a builder here
+def build_llama(shape: Shape, out: Path) -> Path:
+    """A random Llama of the shape, with the same tokenizer (a prompt ending in </s> is still one prompt)."""
+    config = LlamaConfig(vocab_size=shape.vocab, hidden_size=shape.d_model, intermediate_size=shape.d_ff,
+                         num_hidden_layers=shape.layers, num_attention_heads=shape.heads,
+                         num_key_value_heads=shape.heads, tie_word_embeddings=True, pad_token_id=PAD_ID,
+                         eos_token_id=EOS_ID, bos_token_id=None, max_position_embeddings=512)
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(0)
+        model = LlamaForCausalLM(config).eval()
+    model.generation_config = GenerationConfig(pad_token_id=PAD_ID, eos_token_id=EOS_ID, min_new_tokens=NEW_TOKENS)
+    model.save_pretrained(out)
+    word_tokenizer(shape.vocab).save_pretrained(out)
+    return out
+
+
+BUILDERS: dict[str, Callable[[Shape, Path], Path]] = {"t5": build_t5, "llama": build_llama}  # a new architecture: a builder here
 
 
 def build_model(shape: Shape, out: Path) -> Path:

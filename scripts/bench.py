@@ -1,6 +1,7 @@
-"""Benchmark one alignrun step against a bare floor and a naive loop on three random T5-shaped models.
+"""Benchmark one alignrun step against a bare floor and a naive loop on three random T5-shaped models, and on
+request (--shapes causal) a ~61M Llama-shaped decoder-only model.
 
-    scripts/bench [--shapes tiny,small,base] [--variants ours,floor,naive,ours-bf16|all] [--rounds 2]
+    scripts/bench [--shapes tiny,small,base,causal] [--variants ours,floor,naive,ours-bf16|all] [--rounds 2]
                   [--memory VARIANTS] [--out bench-results/bench.json]
 
 For each shape a random model is saved as a Hugging Face folder (WordLevel tokenizer over invented words)
@@ -138,11 +139,13 @@ def instrument() -> None:
 
 
 def plain_generate(policy: Policy, ids: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
-    """The same sampling call as rollout.sample, without asking for logits or hidden states."""
-    return policy.lm.generate(input_ids=ids, attention_mask=mask, max_new_tokens=NEW_TOKENS, num_beams=1,
-                              do_sample=True, temperature=1.0, top_k=0, top_p=1.0,
-                              pad_token_id=policy.tokenizer.pad_token_id,
-                              eos_token_id=policy.tokenizer.eos_token_id)
+    """The same sampling call as rollout.sample, without asking for logits or hidden states; the same
+    sequences [B, 1 + T] (a causal model's from the prompt's last token)."""
+    seq = policy.lm.generate(input_ids=ids, attention_mask=mask, max_new_tokens=NEW_TOKENS, num_beams=1,
+                             do_sample=True, temperature=1.0, top_k=0, top_p=1.0,
+                             pad_token_id=policy.tokenizer.pad_token_id,
+                             eos_token_id=policy.tokenizer.eos_token_id)
+    return seq[:, ids.shape[1] - 1:] if policy.causal else seq
 
 
 @dataclass
@@ -191,14 +194,12 @@ def floor_step(s: Setup, step: int) -> dict[str, float]:
         seq = plain_generate(s.policy, ids, mask)
     decoder_input, response = seq[:, :-1], seq[:, 1:]
     with CLOCK.part("reference"), torch.no_grad(), lm.disable_adapter():
-        selective_log_softmax(lm(input_ids=ids, attention_mask=mask, decoder_input_ids=decoder_input,
-                                 use_cache=False).logits, response)
+        selective_log_softmax(s.policy.reply_logits(lm, ids, mask, decoder_input), response)
     order = torch.Generator().manual_seed(step)
     with CLOCK.part("update"):
         for _ in range(p.epochs):
             for idx in torch.randperm(len(s.prompts), generator=order).split(p.minibatch):
-                logits = lm(input_ids=ids[idx], attention_mask=mask[idx],
-                            decoder_input_ids=decoder_input[idx], use_cache=False).logits
+                logits = s.policy.reply_logits(lm, ids[idx], mask[idx], decoder_input[idx])
                 loss = -selective_log_softmax(logits, response[idx]).mean()
                 s.optimizer.zero_grad(set_to_none=True)
                 loss.backward()

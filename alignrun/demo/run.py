@@ -9,23 +9,28 @@ import alignrun
 from alignrun.errors import UserError
 
 DEMO_CONFIG = Path(alignrun.__file__).resolve().parent.parent / "configs" / "demo.toml"
+CAUSAL_DEMO_CONFIG = DEMO_CONFIG.with_name("causal-demo.toml")  # the decoder-only variant (alignrun demo --causal)
 # The CI-sized demo: fewer steps and held-out prompts, same models.
 QUICK = ["ppo.steps=32", "evaluation.max_prompts=40", "evaluation.samples_per_prompt=2"]
 
 
-def run_demo(out: str | None, quick: bool, quiet: bool, overrides: list[str], overwrite: bool = False) -> int:
+def run_demo(out: str | None, quick: bool, quiet: bool, overrides: list[str], overwrite: bool = False,
+             causal: bool = False) -> int:
     from alignrun.config import load_config
     from alignrun.demo.build import build_demo
+    from alignrun.demo.causal import build_causal_demo
     from alignrun.report import summary_text
     from alignrun.runfolder import check_run_folder
     from alignrun.trainer import run_experiment
 
-    if not DEMO_CONFIG.is_file():
-        raise UserError(f"{DEMO_CONFIG}: the demo config is missing; run the demo from a checkout of the repository")
-    cfg = load_config(DEMO_CONFIG, [*(QUICK if quick else []), *overrides])
-    target = Path(out or cfg.run.out or Path("runs") / ("demo-quick" if quick else "demo"))
+    config = CAUSAL_DEMO_CONFIG if causal else DEMO_CONFIG
+    if not config.is_file():
+        raise UserError(f"{config}: the demo config is missing; run the demo from a checkout of the repository")
+    cfg = load_config(config, [*(QUICK if quick else []), *overrides])
+    name = ("causal-demo" if causal else "demo") + ("-quick" if quick else "")
+    target = Path(out or cfg.run.out or Path("runs") / name)
     check_run_folder(target, resume=False, overwrite=overwrite)  # before the models are built
-    build_demo(quiet=quiet)
+    (build_causal_demo if causal else build_demo)(quiet=quiet)
     report = run_experiment(cfg, target, quiet=quiet, overwrite=overwrite)
     print(summary_text(report))
     print("\nsample pairs (held-out prompt -> greedy reply before / after):")
