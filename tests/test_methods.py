@@ -155,6 +155,11 @@ def test_policy_loss_by_replies_weighs_each_reply_once() -> None:
     by_replies = ppo.policy_loss(zeros, zeros, adv, mask, 0.2, "replies")[0]
     assert float(by_tokens) == pytest.approx(-(3 - 2) / 4)
     assert float(by_replies) == pytest.approx(-(1 - 2) / 2)
+    # the value loss 0.5 (V - R)^2 (no clipping) is reduced the same way: per token 0.5 (1 + 1 + 1 + 4) / 4,
+    # per reply 0.5 (1 + 4) / 2
+    returns = torch.tensor([[1.0, 1.0, 1.0], [2.0, 9.0, 9.0]])
+    assert float(ppo.value_loss(zeros, zeros, returns, mask, None)[0]) == pytest.approx(0.5 * 7 / 4)
+    assert float(ppo.value_loss(zeros, zeros, returns, mask, None, "replies")[0]) == pytest.approx(0.5 * 5 / 2)
 
 
 # ------------------------------------------------------------------------------------ config
