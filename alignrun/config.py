@@ -173,8 +173,8 @@ class MethodSection(Section):
         "sample", description="grpo only: divide R - group mean by the group's sample std (n - 1), population std (n), "
         "or not at all (Liu et al. 2025)")
     loss_average: Literal["tokens", "replies"] = Field(
-        "tokens", description="how per-token losses are averaged: over all tokens of the minibatch, or per reply and "
-        "then over replies (the GRPO paper's form, which weighs a short reply's tokens more; Liu et al. 2025)")
+        "tokens", description="how per-token losses (policy, value, k3 KL) are averaged: over all tokens of the minibatch, "
+        "or per reply and then over replies (the GRPO paper's form, which weighs a short reply's tokens more; Liu et al. 2025)")
 
     @model_validator(mode="after")
     def _groups_need_two(self) -> MethodSection:

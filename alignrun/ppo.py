@@ -158,16 +158,17 @@ def kl_loss(logp_new: Tensor, ref_logp: Tensor, mask: Tensor, average: str = "to
 
 
 def value_loss(
-    values_new: Tensor, values_old: Tensor, returns: Tensor, mask: Tensor, clip: float | None
+    values_new: Tensor, values_old: Tensor, returns: Tensor, mask: Tensor, clip: float | None, average: str = "tokens"
 ) -> tuple[Tensor, Tensor]:
-    """Value loss, clipped when `clip` is set, and the share of real tokens where the clipped term is the larger one."""
+    """Value loss (reduced by `masked_average`), clipped when `clip` is set, and the share of real tokens where the
+    clipped term is the larger one."""
     unclipped = (values_new - returns) ** 2
     if clip is None:
-        return 0.5 * masked_mean(unclipped, mask), torch.zeros((), dtype=values_new.dtype)  # 0.5 E[(V - R)^2]
+        return 0.5 * masked_average(unclipped, mask, average), torch.zeros((), dtype=values_new.dtype)  # 0.5 E[(V - R)^2]
     values_clipped = values_old + torch.clamp(values_new - values_old, -clip, clip)
     clipped = (values_clipped - returns) ** 2
     # 0.5 * E[max((V - R)^2, (V_clip - R)^2)] (Huang et al. 2022, value loss clipping)
-    loss = 0.5 * masked_mean(torch.maximum(unclipped, clipped), mask)
+    loss = 0.5 * masked_average(torch.maximum(unclipped, clipped), mask, average)
     with torch.no_grad():
         # share of tokens where the clipped term wins (common practice, e.g. Huang et al. 2024; from memory)
         clip_frac = masked_mean((clipped > unclipped).to(values_new.dtype), mask)

@@ -168,7 +168,7 @@ def ppo_update(net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerat
             pl, clip_frac, approx_kl = ppo.policy_loss(logp, part.logp, advantages[idx], mask, p.clip_epsilon, average)
             found = {"policy_loss": pl, "clip_frac": clip_frac, "approx_kl": approx_kl}
             if returns is not None:
-                vl, vclip = ppo.value_loss(values, part.values, returns[idx], mask, value_clip)
+                vl, vclip = ppo.value_loss(values, part.values, returns[idx], mask, value_clip, average)
                 loss = pl + p.value_weight * vl
                 found.update(value_loss=vl, value_clip_frac=vclip)
             else:

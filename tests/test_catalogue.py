@@ -296,6 +296,8 @@ CASES: list[Case] = [
     Case("config-empty-model", "config", lambda ws: ws.run(("base.model", "")), ("'base.model'", "''", "at least 1 character")),
     Case("config-minibatch-divides", "config", lambda ws: ws.run(("ppo.minibatch", 3)),
          ("[ppo]", "minibatch (3) must divide prompts_per_step (4)", "try minibatch = 2")),
+    Case("config-group-method-one-reply", "config", lambda ws: ws.run(("method.name", "grpo")),
+         ("exp.toml", "[method]", "samples_per_prompt >= 2 (it is 1)", "method.samples_per_prompt = 4")),
     Case("config-labels-and-index", "config",
          lambda ws: ws.run(("reward.harmful_labels", ["x"]), ("reward.harmful_index", 1)),
          ("[reward]", "either harmful_labels or harmful_index, not both")),
