@@ -215,6 +215,13 @@ def test_chat_format_uses_the_template_once(causal_models, tmp_path: Path) -> No
         _policy(folder, prompt_format="chat")
 
 
+def test_a_reply_past_gpt2s_learned_positions_is_refused_by_name(causal_models) -> None:
+    policy = _policy(causal_models["gpt2"])  # n_positions = 256 (demo.causal.build_tiny_causal)
+    ids, mask = policy.encode(PROMPTS[:2], 48, CPU)
+    with pytest.raises(UserError, match=r"plus generation.max_new_tokens = 250 exceeds the 256 positions"):
+        sample(policy, ids, mask, 250)
+
+
 def test_long_prompts_keep_their_end(causal_models) -> None:
     # a causal prompt is cut from the left: the separator before the reply survives truncation
     policy = _policy(causal_models["gpt2"])
