@@ -95,6 +95,11 @@ def sample(policy: Policy, prompt_ids: torch.Tensor, prompt_mask: torch.Tensor, 
     [B, T], values [B, T] or None). Raises UserError when generation changed the distribution (a logits processor
     was active)."""
     reuse = {} if encoder_hidden is None else {"encoder_outputs": encoder_outputs(encoder_hidden)}
+    limit = getattr(policy.lm.config, "n_positions", None)  # learned positions (GPT-2): no position past it exists
+    if policy.causal and limit is not None and prompt_ids.shape[1] + max_new_tokens > limit:
+        raise UserError(f"generation: a prompt of {prompt_ids.shape[1]} tokens plus generation.max_new_tokens = "
+                        f"{max_new_tokens} exceeds the {limit} positions of {policy.lm.config.name_or_path}; lower "
+                        "generation.max_prompt_tokens or generation.max_new_tokens")
     with decoder_states(policy.lm) as states:
         out = policy.lm.generate(input_ids=prompt_ids, attention_mask=prompt_mask,
                                  generation_config=generation_settings(policy, max_new_tokens, do_sample), **reuse)

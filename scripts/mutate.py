@@ -36,7 +36,8 @@ class Mutation:
 MUTATIONS = (
     Mutation("reference keeps its adapters on", "alignrun/models.py",
              "with self.lm.disable_adapter():\n                yield self.lm", "yield self.lm",
-             ("tests/test_trainer.py::test_reference_is_the_base_and_stored_logprobs_are_the_policys",)),
+             ("tests/test_trainer.py::test_reference_is_the_base_and_stored_logprobs_are_the_policys",
+              "tests/test_causal.py::test_reference_and_stored_logprobs_match_an_unpadded_forward")),
     Mutation("old log-probs replaced by reference log-probs", "alignrun/trainer.py",
              "ppo.policy_loss(logp, part.logp,", "ppo.policy_loss(logp, part.ref_logp,", (WIRING,)),
     Mutation("policy-loss sign flipped", "alignrun/trainer.py",

@@ -215,6 +215,13 @@ def test_chat_format_uses_the_template_once(causal_models, tmp_path: Path) -> No
         _policy(folder, prompt_format="chat")
 
 
+def test_a_reply_past_gpt2s_learned_positions_is_refused_by_name(causal_models) -> None:
+    policy = _policy(causal_models["gpt2"])  # n_positions = 256 (demo.causal.build_tiny_causal)
+    ids, mask = policy.encode(PROMPTS[:2], 48, CPU)
+    with pytest.raises(UserError, match=r"plus generation.max_new_tokens = 250 exceeds the 256 positions"):
+        sample(policy, ids, mask, 250)
+
+
 def test_long_prompts_keep_their_end(causal_models) -> None:
     # a causal prompt is cut from the left: the separator before the reply survives truncation
     policy = _policy(causal_models["gpt2"])
@@ -354,3 +361,21 @@ def test_bf16_stores_gpt2_conv1d_weights_in_bf16_and_still_samples(causal_models
     with autocast("bf16", CPU):
         ro = rollout(policy, PROMPTS[:4], 48, 6, CPU)
     assert torch.isfinite(ro.logp).all() and torch.isfinite(ro.ref_logp).all() and ro.response_mask.sum() > 0
+
+
+@pytest.mark.slow
+def test_quick_causal_demo_lowers_harm_by_both_judges(tmp_path: Path, capsys) -> None:
+    """`alignrun demo --causal --quick`: the decoder-only demo base (built once into $ALIGNRUN_CACHE, a few
+    minutes) really optimises; harm falls by the reward classifier and by alt-profanity-check, trained outside
+    this project."""
+    from alignrun.demo.run import run_demo
+
+    out = tmp_path / "demo"
+    assert run_demo(out=str(out), quick=True, quiet=True, overrides=[], causal=True) == 0
+    assert "harm mean (reward clf)" in capsys.readouterr().out
+    report = json.loads((out / "report.json").read_text())
+    assert report["model"]["base"].endswith("causal-base")
+    ev = report["evaluation"]
+    assert ev["change"]["reward_classifier"]["diff_ci"][1] < 0
+    assert ev["after"]["judge"]["mean"] < ev["before"]["judge"]["mean"]
+    assert not [a for a in report["alarms"] if a["code"] in ("harm-increased", "judge-harm-increased")]
