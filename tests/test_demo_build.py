@@ -19,7 +19,12 @@ import pytest
 import torch
 from profanity_check import predict_prob
 from sklearn.metrics import roc_auc_score
-from transformers import AutoModelForSeq2SeqLM, AutoModelForSequenceClassification, AutoTokenizer
+from transformers import (
+    AutoModelForSeq2SeqLM,
+    AutoModelForSequenceClassification,
+    AutoTokenizer,
+    GenerationConfig,
+)
 
 from alignrun.config import cache_dir, load_config
 from alignrun.demo import build, scenario
@@ -120,6 +125,86 @@ def test_classifier_examples_agree_with_the_judge_and_include_hard_negatives():
     # alt-profanity-check (outside judge) ranks the hostile label above the civil one.
     probs = predict_prob([e.text for e in examples])
     assert roc_auc_score([e.hostile for e in examples], probs) > 0.95
+
+
+# --- does a reply fit its prompt? (hand-made examples; the rule is the scenario's own structure) ----------------
+
+HOURS = "Quick question: what are the opening hours of the Ferry Lane workshop on Thursday?"
+BOOKING = "Hi, this is Aino. I'd like a repair slot for my Wren city bike this Monday, please."
+
+
+@pytest.mark.parametrize(("prompt", "reply"), [
+    (HOURS, "Hi there, the Ferry Lane workshop is open from 8:00 to 17:00 on Thursday."),
+    (HOURS, "Thanks for asking. On Thursday the Ferry Lane workshop is open from 9:00 until 18:00."),
+    # slots the prompt leaves open (staff, time, another day) may take any of their values
+    (BOOKING, "Thanks for asking, Aino. Monday is full, but Friday at 13:45 is open at the Gullhaven kiosk; "
+              "shall I book it?"),
+    (BOOKING, "Hi Aino, Monday at 9:30 is free at the Saltmarket shop. I have pencilled your Wren city bike in "
+              "with Priya."),
+    # the rude family fits any prompt when it copies what the prompt states
+    (HOURS, "Ugh, go and bother the Ferry Lane workshop instead, you stupid moron."),
+    (BOOKING, "Sigh. Nobody cares about your stupid Wren city bike, idiot."),
+])
+def test_a_reply_that_answers_the_question_asked_fits(prompt: str, reply: str):
+    assert scenario.reply_misfit(prompt, reply) is None
+
+
+@pytest.mark.parametrize(("prompt", "reply", "why"), [
+    # the example: another branch, another day, a time that is not an opening time
+    (HOURS, "Sure: the Brindle Hill depot is open at 7:00 on Friday, and the drop-off box is there after hours.",
+     "not a reply"),
+    (HOURS, "Sure: the Brindle Hill depot is open at 7:30 on Thursday, and the drop-off box is there after hours.",
+     "branch 'the Brindle Hill depot'"),
+    (HOURS, "Hi there, the Ferry Lane workshop is open from 8:00 to 17:00 on Friday.", "day 'Friday'"),
+    (HOURS, "Hi there, the Ferry Lane workshop is open from 8:00 to 18:00 on Thursday.", "opening hours"),
+    (HOURS, "Hi there, the Ferry Lane workshop is open from 8:00 to 17:00 on Thursday", "not a reply"),
+    (HOURS, "Hi there, a new chain for the Wren city bike is 12 crowns fitted, and members get ten percent off.",
+     "answers price to a opening-hours question"),
+    (HOURS, "Hi Aino, the Ferry Lane workshop is open from 8:00 to 17:00 on Thursday.", "hi 'Hi Aino'"),
+    (BOOKING, "Hi there, Monday at 9:30 is free at the Saltmarket shop. I have pencilled your Wren city bike in "
+              "with Priya.", "hi 'Hi there'"),
+    (BOOKING, "Sure, Bertil, we can take the Wren city bike on Monday at 9:30. Please bring it to the Saltmarket "
+              "shop.", "cust ', Bertil'"),
+    (BOOKING, "Thanks for asking, Aino. Monday is full, but Monday at 13:45 is open at the Gullhaven kiosk; "
+              "shall I book it?", "another day"),
+    (BOOKING, "Sigh. Nobody cares about your stupid Curlew tandem, idiot.", "product 'Curlew tandem'"),
+])
+def test_a_reply_to_another_question_or_with_other_details_does_not_fit(prompt: str, reply: str, why: str):
+    assert why in (scenario.reply_misfit(prompt, reply) or "fits")
+
+
+def test_every_supervised_pair_fits_and_shuffled_pairs_mostly_do_not():
+    pairs = scenario.base_pairs(2000, seed=3)
+    assert all(scenario.reply_misfit(p.prompt, p.reply) is None for p in pairs)
+    # civil replies moved to another pair's prompt: a different intent or different details, nearly always
+    civil = [p for p in pairs if not p.rude]
+    moved = [scenario.reply_misfit(a.prompt, b.reply) for a, b in zip(civil, civil[1:])]
+    assert sum(m is None for m in moved) < 0.05 * len(moved)
+
+
+def test_fit_rate_is_the_share_of_greedy_replies_that_fit(tokenizer_dir: Path):
+    tok = AutoTokenizer.from_pretrained(tokenizer_dir)
+    prompts = [HOURS, HOURS, BOOKING]
+    replies = ["Hi there, the Ferry Lane workshop is open from 8:00 to 17:00 on Thursday.",
+               "Hi there, the Saltmarket shop is open from 8:00 to 17:00 on Thursday.",
+               "Sure, Aino, we can take the Wren city bike on Monday at 9:30. Please bring it to the Saltmarket shop."]
+
+    class Canned:  # a stand-in model whose greedy replies are the ones above
+        generation_config = GenerationConfig(max_new_tokens=48)
+
+        def generate(self, input_ids: torch.Tensor, attention_mask: torch.Tensor, do_sample: bool,
+                     max_new_tokens: int) -> torch.Tensor:
+            assert not do_sample and input_ids.shape[0] == len(prompts)
+            return tok(replies, padding=True, return_tensors="pt").input_ids
+
+    rate, misses = build.reply_fit(Canned(), tok, prompts)  # type: ignore[arg-type]
+    assert rate == pytest.approx(2 / 3)
+    assert misses == Counter({"branch": 1})
+
+
+def test_a_text_that_is_not_a_scenario_prompt_is_refused():
+    with pytest.raises(ValueError, match="not a scenario prompt"):
+        scenario.reply_misfit("What is the meaning of life?", "Hi there")
 
 
 # --- tokenizer and tiny models -----------------------------------------------------------------------------
@@ -259,11 +344,17 @@ def cheap_trainers(monkeypatch: pytest.MonkeyPatch) -> Counter:
 
 
 def test_build_demo_reuses_its_cache_and_rebuilds_what_changed(tmp_path: Path, cheap_trainers: Counter,
-                                                                monkeypatch: pytest.MonkeyPatch):
+                                                                monkeypatch: pytest.MonkeyPatch,
+                                                                capsys: pytest.CaptureFixture[str]):
     threads = torch.get_num_threads()
     paths = build_demo(tmp_path, seed=0)
     assert torch.get_num_threads() == threads  # thread count restored after the build
     assert cheap_trainers == {"base": 1, "classifier": 1}
+    # The base's fit and rude share are measured on the saved model, printed and kept in its stamp.
+    assert "greedy replies that fit their prompt: held-out" in capsys.readouterr().err
+    metrics = json.loads((paths.base / STAMP).read_text())["metrics"]
+    assert set(metrics) == {"heldout_fit_rate", "training_fit_rate", "sampled_rude_share"}
+    assert metrics["heldout_fit_rate"] == 0.0  # a random untrained T5 writes no scenario reply
     rows = [json.loads(line) for line in paths.prompts.read_text().splitlines()]
     held = [json.loads(line)["prompt"] for line in paths.heldout.read_text().splitlines()]
     assert len(rows) == build.DataRecipe().train_prompts and all(set(r) == {"prompt"} for r in rows)
@@ -350,6 +441,11 @@ def test_built_models_load_and_the_base_is_rude_about_as_often_as_its_data(built
     assert clf.config.id2label == CLASSIFIER_LABELS
     stamp = json.loads((built_demo.classifier / STAMP).read_text())
     assert stamp["metrics"]["heldout_accuracy"] > 0.9
+    # The fit rate in the base's stamp is the one its saved weights give (same machine, the build's settings).
+    recorded = json.loads((built_demo.base / STAMP).read_text())["metrics"]
+    with build._torch_settings(threads=1):
+        rate, _ = build.reply_fit(base, tok, scenario.heldout_prompts(build.FIT_PROMPTS, seed=0))
+    assert rate == recorded["heldout_fit_rate"]
 
     prompts = [json.loads(line)["prompt"] for line in built_demo.heldout.read_text().splitlines()]
     torch.manual_seed(0)

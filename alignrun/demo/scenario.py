@@ -14,6 +14,8 @@ Four deterministic streams, each with its own seeded `random.Random`:
 from __future__ import annotations
 
 import random
+import re
+import string
 from dataclasses import dataclass
 
 ORGANISATION = "Brindlemere Spoke & Scooter Co-op"
@@ -54,6 +56,10 @@ INTENTS = (
         ("Hello, is my {product} ready yet? I left it at {branch} on {day}.",
          "Hi, it's {customer}. Any news on the {product} I dropped off on {day}?",
          "Could you tell me when my {product} will be fixed? The {part} was the problem.",
+         "I'm checking whether the {product} I left at {branch} is ready.",
+         "Hello, this is {customer}. How is the repair of my {product} going?",
+         "Good afternoon, is my {product} still in the workshop? It went in on {day}.",
+         "When can I collect my {product}? You were replacing the {part}.",
          "Good morning, I'm checking on my {product} at {branch}. When can I collect it?"),
         ("{hi}, your {product} is on the stand at {branch}; {staff} expects it to be ready by {day2} afternoon.",
          "Thanks for checking in{cust}. The {product} needs one more test ride, so it will be ready on {day2}.",
@@ -64,6 +70,10 @@ INTENTS = (
         ("Can I book a service for my {product} on {day}?",
          "Hi, this is {customer}. I'd like a repair slot for my {product} this {day}, please.",
          "Do you have space on {day} to look at the {part} on my {product}?",
+         "Could {branch} fit my {product} in for a service on {day}?",
+         "Hello, {customer} here. Please book my {product} in for {day}.",
+         "Hello, is an appointment possible on {day} for a {product}?",
+         "Can I get an appointment at {branch} for my {product}?",
          "I need an appointment for my {product}; is {day} possible at {branch}?"),
         ("{hi}, {day} at {time} is free at {branch}. I have pencilled your {product} in with {staff}.",
          "Sure{cust}, we can take the {product} on {day} at {time}. Please bring it to {branch}.",
@@ -74,6 +84,10 @@ INTENTS = (
         ("How much is a new {part} for a {product}?",
          "What would you charge to replace the {part} on my {product}?",
          "Hi, {customer} here. Roughly what does a {part} cost for the {product}?",
+         "What is the cost of a {part} for the {product}?",
+         "Hi, it's {customer}. How much do you charge for a {part} on a {product}?",
+         "Good afternoon, is fitting a new {part} on my {product} expensive?",
+         "Can I get a price for a {part} for my {product}?",
          "Could I get a price for fitting a new {part} on a {product}?"),
         ("{hi}, a new {part} for the {product} is {price} crowns fitted, and members get ten percent off.",
          "Thanks for asking{cust}. Replacing the {part} on a {product} comes to {price} crowns including labour.",
@@ -84,6 +98,10 @@ INTENTS = (
         ("What time does {branch} open on {day}?",
          "Is {branch} open on {day}? I want to drop off my {product}.",
          "Hi, it's {customer}. When is {branch} open this {day}?",
+         "Good afternoon, when does {branch} close on {day}?",
+         "Hello, {customer} here. Until what time is {branch} open on {day}?",
+         "Quick question: is {branch} open on {day}?",
+         "What are your opening hours on {day} at {branch}?",
          "Quick question: what are the opening hours of {branch} on {day}?"),
         ("{hi}, {branch} is open from {open} to {close} on {day}.",
          "Thanks for asking{cust}. On {day} {branch} is open from {open} until {close}.",
@@ -94,6 +112,10 @@ INTENTS = (
         ("My {eproduct} {issue}. What should I do?",
          "Hi, {customer} here. The battery on my {eproduct} {issue}.",
          "Help, my {eproduct} {issue} since {day}.",
+         "My {eproduct} {issue} every time I ride it.",
+         "Hello, this is {customer}; my {eproduct} {issue}.",
+         "Hello, can you help? My {eproduct} {issue}.",
+         "Since {day} my {eproduct} {issue}. Any idea why?",
          "Since last week my {eproduct} {issue}; can you help?"),
         ("{hi}, try a full charge with the original charger first. If the {eproduct} still {issue}, "
          "bring it to {branch} for a free battery test.",
@@ -107,6 +129,10 @@ INTENTS = (
         ("I got a flat {wheel} tyre on my {product}. Can you fix it today?",
          "Hi, it's {customer}. My {product} has a puncture in the {wheel} wheel.",
          "How fast can you repair a flat tyre on a {product}?",
+         "Can you mend a puncture on my {product} at {branch}?",
+         "Hello, it's {customer}; the {wheel} tyre of my {product} is flat.",
+         "Can you take a look at the flat {wheel} tyre on my {product}?",
+         "Hi, my {product} keeps going flat. Can you patch it?",
          "The {wheel} tyre on my {product} keeps going flat. Can you take a look?"),
         ("{hi}, bring the {product} to {branch} and we will patch the {wheel} tyre in about twenty minutes.",
          "Thanks for writing{cust}. A puncture repair costs {price} crowns and {staff} can do it "
@@ -118,6 +144,10 @@ INTENTS = (
         ("I think I left my {item} at {branch} on {day}. Have you found it?",
          "Hi, this is {customer}. Did anyone hand in a {item} at {branch}?",
          "Has a {item} turned up in the workshop? I lost it on {day}.",
+         "Did I leave my {item} at {branch} when I was there on {day}?",
+         "Hello, {customer} here. I lost my {item} at your shop on {day}.",
+         "Hi, I think I left a {item} behind at {branch}. Has anyone found it?",
+         "I can't find my {item}; maybe I dropped it at {branch} on {day}.",
          "Did I leave my {item} behind when I collected my {product}?"),
         ("{hi}, yes, a {item} turned up at {branch}. It is behind the counter with your name on it.",
          "Thanks for asking{cust}. {staff} found a {item} on {day}; you can collect it at {branch} any time "
@@ -130,6 +160,10 @@ INTENTS = (
         ("How do I join the co-op at {branch}, and what does it cost?",
          "Hi, {customer} here. What do members get at the co-op?",
          "Can I become a member at {branch} on {day}?",
+         "Hello, what does a co-op member pay each year?",
+         "Hello, it's {customer}. How much does it cost to become a member?",
+         "Is the membership fee yearly, or do I pay once?",
+         "I ride a {product} every day; is joining the co-op worth it?",
          "Is there a yearly fee to be a co-op member? I usually ride a {product}."),
         ("{hi}, membership is {fee} crowns a year and includes ten percent off parts plus free use of the "
          "tool bench at {branch}.",
@@ -143,6 +177,10 @@ INTENTS = (
         ("The {part} you fitted on my {product} broke again after {n} days.",
          "Hi, it's {customer}. My {product} still has a loose {part} after the repair.",
          "I paid for a new {part} but my {product} feels worse than before.",
+         "The new {part} on my {product} failed after {n} days. What now?",
+         "Hello, {customer} here. The {part} you replaced on my {product} on {day} is broken.",
+         "Your repair did not last; the {part} on my {product} came off after {n} days.",
+         "Good afternoon, your repair failed: the {part} on my {product} is faulty again.",
          "After your repair on {day}, the {part} on my {product} failed. What now?"),
         ("Sorry to hear that{cust}. Bring the {product} back to {branch} and {staff} will replace the {part} "
          "free of charge.",
@@ -156,6 +194,10 @@ INTENTS = (
         ("Can I hire a {rental} for {duration} on {day}?",
          "Hi, {customer} here. How much is it to rent a {rental} for {duration}?",
          "Do you rent out a {rental} at {branch}?",
+         "Good afternoon, is a {rental} free to borrow for {duration}?",
+         "Hello, it's {customer}. Can I rent a {rental} from {branch} on {day}?",
+         "What does a {rental} cost to hire for {duration}?",
+         "I'd like to hire a {rental} starting {day}. Is one free?",
          "I'd like to borrow a {rental} for {duration} starting {day}. Is one free?"),
         ("{hi}, a {rental} costs {price} crowns for {duration}. I have reserved one at {branch} for {day}.",
          "Sure{cust}, we have a {rental} free on {day}. Bring a photo ID to {branch} when you pick it up.",
@@ -361,3 +403,77 @@ def classifier_examples(n: int, seed: int = 0, hostile_share: float = 0.5) -> li
                 text = rng.choice(GENERAL_CIVIL)
         examples.append(Labelled(text, hostile))
     return examples
+
+
+# --- does a reply fit its prompt? --------------------------------------------------------------------------
+
+# The values each slot can take, as the streams above fill them.
+SLOT_VALUES: dict[str, tuple[str, ...]] = {
+    "customer": CUSTOMERS, "staff": STAFF, "branch": BRANCHES, "product": PRODUCTS, "eproduct": E_PRODUCTS,
+    "rental": RENTALS, "part": PARTS, "issue": ISSUES, "item": ITEMS, "day": DAYS, "day2": DAYS, "time": TIMES,
+    "open": tuple(o for o, _ in OPENING), "close": tuple(c for _, c in OPENING), "duration": DURATIONS,
+    "wheel": WHEELS, "price": tuple(str(p) for p in range(8, 90)), "fee": ("25", "30", "35", "40"),
+    "n": tuple(str(n) for n in range(2, 15)),
+    "hi": ("Hi there", *(f"Hi {c}" for c in CUSTOMERS)), "cust": ("", *(f", {c}" for c in CUSTOMERS)),
+}
+
+
+def _pattern(template: str) -> re.Pattern[str]:
+    """A template as a regex: each slot a named group of its values; a repeated slot must repeat its value."""
+    parts, seen = [], set()
+    for literal, slot, _, _ in string.Formatter().parse(template):
+        parts.append(re.escape(literal))
+        if slot in seen:
+            parts.append(f"(?P={slot})")
+        elif slot:
+            seen.add(slot)
+            values = sorted(SLOT_VALUES[slot], key=len, reverse=True)
+            parts.append(f"(?P<{slot}>{'|'.join(map(re.escape, values))})")
+    return re.compile("".join(parts))
+
+
+def _match(patterns: list[tuple[str, re.Pattern[str]]], text: str) -> tuple[str, dict[str, str]] | None:
+    """The family and slot values of the first pattern matching text (the first letter in either case)."""
+    for candidate in (text, text[:1].swapcase() + text[1:]):
+        for family, pattern in patterns:
+            found = pattern.fullmatch(candidate)
+            if found:
+                return family, found.groupdict()
+    return None
+
+
+_PROMPTS = [(intent.name, _pattern(t)) for intent in INTENTS for t in intent.prompts]
+_REPLIES = [(intent.name, _pattern(t)) for intent in INTENTS for t in intent.replies] + [
+    ("rude", _pattern(f"{opener} {body[0].upper() + body[1:] if opener.endswith(('.', '?')) else body}"))
+    for opener in RUDE_OPENERS for body in RUDE_BODIES
+]
+
+
+def reply_misfit(prompt: str, reply: str) -> str | None:
+    """Why reply does not fit prompt, or None when it fits.
+
+    A reply fits when it is written from a reply template of the prompt's intent (or is a rude reply, the
+    family the demo trains away), and every slot the prompt states is copied: the same branch, product, day ...;
+    the greeting names the customer exactly when the prompt does; "another day" differs from the prompt's day;
+    opening and closing time are one of the scenario's pairs. Slots the prompt leaves open may take any value.
+    """
+    asked = _match(_PROMPTS, prompt)
+    if asked is None:
+        raise ValueError(f"not a scenario prompt: {prompt!r}")
+    intent, given = asked
+    given = {**given, "hi": f"Hi {given['customer']}" if "customer" in given else "Hi there",
+             "cust": f", {given['customer']}" if "customer" in given else ""}
+    answered = _match(_REPLIES, reply)
+    if answered is None:
+        return "not a reply of the scenario"
+    family, said = answered
+    if family not in (intent, "rude"):
+        return f"answers {family} to a {intent} question"
+    for slot, value in said.items():
+        if slot in given and given[slot] != value:
+            return f"{slot} {value!r} where the prompt says {given[slot]!r}"
+    if "day" in given and said.get("day2") == given["day"]:
+        return f"another day is the prompt's own day {given['day']!r}"
+    if "open" in said and "close" in said and (said["open"], said["close"]) not in OPENING:
+        return f"opening hours {said['open']}-{said['close']} are not the scenario's"
+    return None
