@@ -133,8 +133,10 @@ class PPOSection(Section):
     """[ppo] the clipped policy-optimisation update (Schulman et al. 2017)."""
 
     steps: int = Field(20, ge=1, le=1_000_000)
-    prompts_per_step: int = Field(16, ge=1, le=65536)
-    minibatch: int = Field(8, ge=1, le=65536)
+    prompts_per_step: int = Field(16, ge=1, le=65536, description="prompts per step, each sampled "
+                                  "method.samples_per_prompt times")
+    minibatch: int = Field(8, ge=1, le=65536, description="prompts per minibatch (with their "
+                           "method.samples_per_prompt replies each)")
     epochs: int = Field(4, ge=1, le=100)
     learning_rate: float = Field(1e-4, gt=0, le=1)
     clip_epsilon: float = Field(0.2, gt=0, lt=1)
