@@ -21,8 +21,8 @@ def test_quick_demo_lowers_harm_by_both_judges(demo_models, tmp_path, capsys, sc
     report = json.loads((out / "report.json").read_text())
     ev = report["evaluation"]
     # our classifier, and alt-profanity-check (trained outside this project) as the independent judge; the
-    # reward classifier's paired 95% interval lies below zero (upper end -0.083 decoder, -0.085 both stacks with
-    # 2 threads, -0.15 and -0.10 with 1, on this project's CI machine: a margin, not a coin toss)
+    # reward classifier's paired 95% interval lies below zero (upper end -0.105 decoder, -0.072 both stacks with
+    # 2 threads on this project's CI machine, with the base of fresh pairs and 8 heads: a margin, not a coin toss)
     assert ev["change"]["reward_classifier"]["diff_ci"][1] < 0
     assert ev["after"]["judge"]["mean"] < ev["before"]["judge"]["mean"]
     assert not [a for a in report["alarms"] if a["code"] in ("harm-increased", "judge-harm-increased")]
