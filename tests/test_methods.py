@@ -7,7 +7,6 @@ from __future__ import annotations
 import hashlib
 import io
 import json
-import os
 import shutil
 import signal
 import subprocess
@@ -27,7 +26,8 @@ from alignrun.cli import main
 from alignrun.config import load_config
 from alignrun.errors import UserError
 from alignrun.rollout import Rollout
-from tests import tiny_run
+from tests import test_multiprocess, tiny_run
+from tests.test_config import GOOD
 from tests.test_resume import checkpoint_step, start_held, status, training_numbers
 
 # ------------------------------------------------------------------------------- advantages, worked examples
@@ -163,19 +163,6 @@ def test_policy_loss_by_replies_weighs_each_reply_once() -> None:
 
 
 # ------------------------------------------------------------------------------------ config
-
-GOOD = """
-[base]
-model = "acme/tiny-seq2seq"
-
-[reward]
-source = "acme/harm-classifier"
-harmful_labels = ["hostile"]
-
-[data]
-prompts = "prompts.jsonl"
-"""
-
 
 @pytest.mark.parametrize("name", ["rloo", "grpo"])
 @pytest.mark.parametrize("k", [None, 1])
@@ -396,49 +383,6 @@ def test_compare_names_the_method_and_reads_older_reports_as_ppo() -> None:
     assert compare._method({"method": {"name": "grpo", "samples_per_prompt": 4}}) == "grpo k=4"
 
 
-def grouped_first_update(config: Path) -> tuple[dict[str, torch.Tensor], dict[str, float], torch.Tensor]:
-    """tests/test_multiprocess.first_update with k replies per prompt: one train_step on a batch sampled once (the
-    same in every process), each process taking the replies of its consecutive share of the prompts."""
-    from accelerate import Accelerator
-
-    from alignrun.data import load_prompts
-    from alignrun.models import build_policy
-    from alignrun.reward import load_scorer
-
-    cfg = load_config(config)
-    k = cfg.method.samples_per_prompt
-    accelerator = Accelerator(cpu=True)
-    rank, processes = accelerator.process_index, accelerator.num_processes
-    torch.set_num_threads(1)
-    torch.manual_seed(0)
-    policy = build_policy(cfg.base, cfg.lora, cfg.reference, accelerator.device)
-    with torch.no_grad():  # as in test_multiprocess: non-zero LoRA B, and an EOS bias so reply lengths differ
-        for name, p in policy.lm.named_parameters():
-            if "lora_B" in name:
-                p.normal_(std=0.05, generator=torch.Generator().manual_seed(len(name)))
-        policy.lm.get_base_model().final_logits_bias[0, policy.tokenizer.eos_token_id] = 5.0
-    prompts = load_prompts(cfg.data, cfg.run.seed).train[: cfg.ppo.prompts_per_step]
-    torch.manual_seed(1)
-    batch = trainer.rollout(policy, [p for p in prompts for _ in range(k)], cfg.generation.max_prompt_tokens,
-                            cfg.generation.max_new_tokens, accelerator.device)
-    share = len(prompts) // processes
-    mine = batch.select(torch.arange(rank * share * k, (rank + 1) * share * k))
-    if cfg.method.name != "ppo":
-        policy.net.value_head.requires_grad_(False)  # as trainer._run_locked does
-    optimizer = torch.optim.AdamW([p for p in policy.net.parameters() if p.requires_grad], lr=cfg.ppo.learning_rate)
-    net, optimizer = accelerator.prepare(policy.net, optimizer)
-    sample = trainer.rollout
-    trainer.rollout = lambda *args, **kwargs: mine  # type: ignore[assignment]  # share the batch, do not sample
-    try:
-        row = trainer.train_step(policy, net, optimizer, accelerator, load_scorer(cfg.reward, "reward"),
-                                 ppo.KLController(beta=cfg.kl.coef, target=cfg.kl.target, horizon=cfg.kl.horizon),
-                                 prompts[rank * share:(rank + 1) * share], cfg, 0, accelerator.device)
-    finally:
-        trainer.rollout = sample  # type: ignore[assignment]
-    weights = {name: p.detach().clone() for name, p in policy.net.named_parameters() if p.requires_grad}
-    return weights, row, batch.response_mask.sum(1)
-
-
 @pytest.mark.slow
 @pytest.mark.parametrize("name, average", [("grpo", "tokens"), ("rloo", "replies")])
 def test_two_processes_make_the_same_critic_free_update_as_one(name: str, average: str, tmp_path: Path) -> None:
@@ -455,20 +399,13 @@ def test_two_processes_make_the_same_critic_free_update_as_one(name: str, averag
     body["method"] = {"name": name, "samples_per_prompt": 2, "loss_average": average}
     config = tiny_run.write_config(tmp_path / "exp" / "first.toml", body)
     two_processes = [sys.executable, "-m", "torch.distributed.run", "--standalone", "--nproc_per_node", "2"]
-    done = subprocess.run([*two_processes, __file__, str(config), str(tmp_path / "two.pt")], cwd=tmp_path,
+    done = subprocess.run([*two_processes, test_multiprocess.__file__, str(config), str(tmp_path / "two.pt")], cwd=tmp_path,
                           env=tiny_run.cli_env(), capture_output=True, text=True, timeout=600)
     assert done.returncode == 0, done.stderr[-3000:]
     two, two_row, _ = torch.load(tmp_path / "two.pt", weights_only=True)
-    one, one_row, lengths = grouped_first_update(config)
+    one, one_row, lengths = test_multiprocess.first_update(config)
     assert lengths[:4].sum() != lengths[4:].sum()  # the processes' shares hold different numbers of tokens
     assert two.keys() == one.keys() and not any("value_head" in key for key in one)
     worst = max(float((two[key] - one[key]).abs().max()) for key in one)
     assert worst <= 1e-6, worst  # test_multiprocess.py's tolerance: float sums in another order
     assert two_row["kl_mean"] == pytest.approx(one_row["kl_mean"], rel=1e-5)
-
-
-if __name__ == "__main__":  # under torchrun: python tests/test_methods.py CONFIG OUT
-    result = grouped_first_update(Path(sys.argv[1]))
-    if int(os.environ.get("RANK", "0")) == 0:
-        torch.save(result, sys.argv[2])
-    torch.distributed.destroy_process_group()

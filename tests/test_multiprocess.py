@@ -28,9 +28,10 @@ TWO_PROCESSES = [sys.executable, "-m", "torch.distributed.run", "--standalone", 
 
 
 def first_update(config: Path) -> tuple[dict[str, torch.Tensor], dict[str, float], torch.Tensor]:
-    """One train_step on a batch of 8 replies sampled once (the same in every process, same weights and seed),
-    each process taking its consecutive share; returns the trainable weights after it, the metrics row and the
-    replies' lengths. The base must be a BART (its final_logits_bias makes EOS likely, so lengths differ)."""
+    """One train_step on a batch sampled once (the same in every process, same weights and seed), k replies per
+    prompt (method.samples_per_prompt), each process taking the replies of its consecutive share of the prompts;
+    returns the trainable weights after it, the metrics row and the replies' lengths. The base must be a BART (its
+    final_logits_bias makes EOS likely, so lengths differ)."""
     from accelerate import Accelerator
 
     from alignrun import ppo, trainer
@@ -40,6 +41,7 @@ def first_update(config: Path) -> tuple[dict[str, torch.Tensor], dict[str, float
     from alignrun.reward import load_scorer
 
     cfg = load_config(config)
+    k = cfg.method.samples_per_prompt
     accelerator = Accelerator(cpu=True)
     rank, processes = accelerator.process_index, accelerator.num_processes
     torch.set_num_threads(1)
@@ -52,10 +54,12 @@ def first_update(config: Path) -> tuple[dict[str, torch.Tensor], dict[str, float
         policy.lm.get_base_model().final_logits_bias[0, policy.tokenizer.eos_token_id] = 5.0
     prompts = load_prompts(cfg.data, cfg.run.seed).train[: cfg.ppo.prompts_per_step]
     torch.manual_seed(1)
-    batch = trainer.rollout(policy, prompts, cfg.generation.max_prompt_tokens, cfg.generation.max_new_tokens,
-                            accelerator.device)
+    batch = trainer.rollout(policy, [p for p in prompts for _ in range(k)], cfg.generation.max_prompt_tokens,
+                            cfg.generation.max_new_tokens, accelerator.device)
     share = len(prompts) // processes
-    mine = batch.select(torch.arange(rank * share, (rank + 1) * share))
+    mine = batch.select(torch.arange(rank * share * k, (rank + 1) * share * k))
+    if cfg.method.name != "ppo":
+        policy.net.value_head.requires_grad_(False)  # as trainer._run_locked does
     optimizer = torch.optim.AdamW([p for p in policy.net.parameters() if p.requires_grad], lr=cfg.ppo.learning_rate)
     net, optimizer = accelerator.prepare(policy.net, optimizer)
     sample = trainer.rollout
