@@ -222,14 +222,6 @@ def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int, qu
     config = _t5_config(len(tokenizer), recipe.d_model, recipe.d_kv, recipe.heads, recipe.d_ff, recipe.layers)
     torch.manual_seed(seed)
     model = T5ForConditionalGeneration(config)
-    optimizer = torch.optim.AdamW(model.parameters(), lr=recipe.learning_rate, weight_decay=0.01)
-
-    def lr_factor(step: int) -> float:  # linear warm-up, then cosine decay to zero (common practice)
-        if step < recipe.warmup_steps:
-            return (step + 1) / recipe.warmup_steps
-        return 0.5 * (1 + math.cos(math.pi * (step - recipe.warmup_steps) / (recipe.steps - recipe.warmup_steps)))
-
-    schedule = torch.optim.lr_scheduler.LambdaLR(optimizer, lr_factor)
     # Batches group replies of similar length, and rude replies are the short ones; a per-batch token mean
     # would then weigh rude tokens more. Dividing the token sum by a constant keeps every token's weight equal.
     norm = recipe.batch_size * float(reply_tokens.float().mean())
@@ -237,38 +229,61 @@ def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int, qu
     batches = _batches(lengths, recipe.batch_size, random.Random(f"base-batches:{seed}"), window=16)
     _log(f"training base T5 ({sum(p.numel() for p in model.parameters()) / 1e6:.2f}M parameters, "
          f"{len(pairs)} pairs, {recipe.steps} steps)")
-    model.train()
-    averaged = [p.detach().clone() for p in model.parameters()]
-    losses = []
-    bar = progress(recipe.steps, "base T5", "step", quiet)
-    for step, idx in zip(range(recipe.steps), batches):
+
+    def batch_loss(idx: list[int]) -> torch.Tensor:
         mask, lab = enc.attention_mask[idx], labels[idx]
         keep_in, keep_out = int(mask.sum(1).max()), int(reply_tokens[idx].max())
         logits = model(input_ids=enc.input_ids[idx, :keep_in], attention_mask=mask[:, :keep_in],
                        labels=lab[:, :keep_out].contiguous()).logits
-        loss = torch.nn.functional.cross_entropy(logits.flatten(0, 1), lab[:, :keep_out].flatten(),
+        return torch.nn.functional.cross_entropy(logits.flatten(0, 1), lab[:, :keep_out].flatten(),
                                                  ignore_index=-100, reduction="sum") / norm
+
+    final_loss = fit(model, batch_loss, batches, recipe.steps, recipe.learning_rate, recipe.warmup_steps,
+                     "base T5", quiet, recipe.weight_average)
+    model.generation_config = _generation_config(PAD_ID, sample=True, max_new_tokens=recipe.max_reply_tokens)
+    model.save_pretrained(out)
+    tokenizer.save_pretrained(out)
+    return {"final_loss": final_loss}
+
+
+def fit(model: torch.nn.Module, batch_loss: Callable[[list[int]], torch.Tensor], batches: Iterator[list[int]],
+        steps: int, learning_rate: float, warmup_steps: int, name: str, quiet: bool,
+        weight_average: float = 0.0) -> float:
+    """`steps` AdamW steps on batch_loss(indices) with gradients clipped at 1 and a linear warm-up, then cosine decay
+    to zero (common practice); with weight_average > 0 the model ends with the exponential moving average of its
+    weights (Polyak & Juditsky 1992) at that decay. Returns the mean loss of the last 50 steps."""
+    optimizer = torch.optim.AdamW(model.parameters(), lr=learning_rate, weight_decay=0.01)
+
+    def lr_factor(step: int) -> float:
+        if step < warmup_steps:
+            return (step + 1) / warmup_steps
+        return 0.5 * (1 + math.cos(math.pi * (step - warmup_steps) / (steps - warmup_steps)))
+
+    schedule = torch.optim.lr_scheduler.LambdaLR(optimizer, lr_factor)
+    model.train()
+    averaged = [p.detach().clone() for p in model.parameters()] if weight_average else []
+    losses: list[float] = []
+    bar = progress(steps, name, "step", quiet)
+    for step, idx in zip(range(steps), batches):
+        loss = batch_loss(idx)
         optimizer.zero_grad()
         loss.backward()
         torch.nn.utils.clip_grad_norm_(model.parameters(), 1.0)
         optimizer.step()
         schedule.step()
-        with torch.no_grad():  # weight averaging (Polyak & Juditsky 1992), as an exponential moving average
+        with torch.no_grad():
             for mean, p in zip(averaged, model.parameters()):
-                mean.lerp_(p, 1 - recipe.weight_average)
+                mean.lerp_(p, 1 - weight_average)
         losses.append(loss.item())
         bar.update(1)
-        if (step + 1) % (recipe.steps // 4) == 0:
-            _log(f"  base step {step + 1}/{recipe.steps}: loss {sum(losses[-50:]) / len(losses[-50:]):.3f}")
+        if (step + 1) % (steps // 4) == 0:
+            _log(f"  {name} step {step + 1}/{steps}: loss {sum(losses[-50:]) / len(losses[-50:]):.3f}")
     bar.close()
     with torch.no_grad():
         for p, mean in zip(model.parameters(), averaged):
             p.copy_(mean)
     model.eval()
-    model.generation_config = _generation_config(PAD_ID, sample=True, max_new_tokens=recipe.max_reply_tokens)
-    model.save_pretrained(out)
-    tokenizer.save_pretrained(out)
-    return {"final_loss": sum(losses[-50:]) / len(losses[-50:])}
+    return sum(losses[-50:]) / len(losses[-50:])
 
 
 def reply_fit(model: T5ForConditionalGeneration, tokenizer: Any, prompts: Sequence[str]) -> tuple[float, Counter]:

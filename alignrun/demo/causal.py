@@ -10,7 +10,6 @@ the same text, so base.prompt_format = "chat" and "plain" (with SEPARATOR) give 
 from __future__ import annotations
 
 import hashlib
-import math
 import random
 from dataclasses import asdict, dataclass
 from pathlib import Path
@@ -27,7 +26,6 @@ from transformers import (
     PreTrainedModel,
 )
 
-from alignrun.console import progress
 from alignrun.demo import scenario
 from alignrun.demo.build import (
     BOS_ID,
@@ -40,6 +38,7 @@ from alignrun.demo.build import (
     _log,
     _torch_settings,
     build_demo,
+    fit,
     read_fingerprint,
 )
 
@@ -120,23 +119,13 @@ def train_causal_base(out: Path, tokenizer_dir: Path, recipe: CausalRecipe, pair
     config = _llama_config(len(tokenizer), recipe.hidden, recipe.heads, recipe.intermediate, recipe.layers)
     torch.manual_seed(seed)
     model = LlamaForCausalLM(config)
-    optimizer = torch.optim.AdamW(model.parameters(), lr=recipe.learning_rate, weight_decay=0.01)
-
-    def lr_factor(step: int) -> float:  # linear warm-up, then cosine decay to zero (common practice)
-        if step < recipe.warmup_steps:
-            return (step + 1) / recipe.warmup_steps
-        return 0.5 * (1 + math.cos(math.pi * (step - recipe.warmup_steps) / (recipe.steps - recipe.warmup_steps)))
-
-    schedule = torch.optim.lr_scheduler.LambdaLR(optimizer, lr_factor)
     norm = recipe.batch_size * float(reply_tokens.mean())  # every reply token weighs the same (see build.train_base)
     batches = _batches([len(a) + len(b) for a, b in rows], recipe.batch_size, random.Random(f"causal-batches:{seed}"),
                        window=16)
     _log(f"training causal base Llama ({sum(p.numel() for p in model.parameters()) / 1e6:.2f}M parameters, "
          f"{len(pairs)} pairs, {recipe.steps} steps)")
-    model.train()
-    losses = []
-    bar = progress(recipe.steps, "causal base", "step", quiet)
-    for step, idx in zip(range(recipe.steps), batches):
+
+    def batch_loss(idx: list[int]) -> torch.Tensor:
         width = max(len(rows[i][0]) + len(rows[i][1]) for i in idx)
         ids = torch.full((len(idx), width), PAD_ID)
         labels = torch.full((len(idx), width), -100)
@@ -146,22 +135,14 @@ def train_causal_base(out: Path, tokenizer_dir: Path, recipe: CausalRecipe, pair
             labels[r, len(a): len(a) + len(b)] = torch.tensor(b)
         lengths = torch.tensor([len(rows[i][0]) + len(rows[i][1]) for i in idx])
         logits = model(input_ids=ids, attention_mask=(torch.arange(width) < lengths[:, None]).long()).logits
-        loss = torch.nn.functional.cross_entropy(logits[:, :-1].flatten(0, 1), labels[:, 1:].flatten(),
+        return torch.nn.functional.cross_entropy(logits[:, :-1].flatten(0, 1), labels[:, 1:].flatten(),
                                                  ignore_index=-100, reduction="sum") / norm
-        optimizer.zero_grad()
-        loss.backward()
-        torch.nn.utils.clip_grad_norm_(model.parameters(), 1.0)
-        optimizer.step()
-        schedule.step()
-        losses.append(loss.item())
-        bar.update(1)
-        if (step + 1) % (recipe.steps // 4) == 0:
-            _log(f"  causal base step {step + 1}/{recipe.steps}: loss {sum(losses[-50:]) / len(losses[-50:]):.3f}")
-    bar.close()
-    model.eval()
+
+    final_loss = fit(model, batch_loss, batches, recipe.steps, recipe.learning_rate, recipe.warmup_steps,
+                     "causal base", quiet)
     model.generation_config = _generation_config(pairs_recipe.max_reply_tokens)
     model.save_pretrained(out)
-    return {"final_loss": sum(losses[-50:]) / len(losses[-50:])}
+    return {"final_loss": final_loss}
 
 
 def build_causal_demo(cache: Path | None = None, seed: int = 0, quiet: bool = False) -> DemoPaths:
