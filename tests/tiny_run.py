@@ -23,6 +23,7 @@ from __future__ import annotations
 import json
 import os
 import re
+import signal
 import subprocess
 import sys
 import time
@@ -252,10 +253,18 @@ def run_alignrun(args: list[str], cwd: Path, timeout: float = 300, **env: str) -
                           timeout=timeout)
 
 
+def _ctrl_c_as_in_a_terminal() -> None:
+    """In the child, before exec: SIGINT unblocked and at its default, as a terminal user has it, whatever the test
+    process's own state (a signal mask and an ignored SIGINT are inherited across fork and exec)."""
+    signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def start_alignrun(args: list[str], cwd: Path, **env: str) -> subprocess.Popen:
     """Start `python -m alignrun ARGS` in the background; its stdout/stderr go to cwd/child.out and child.err."""
     with open(Path(cwd) / "child.out", "w") as out, open(Path(cwd) / "child.err", "w") as err:
-        return subprocess.Popen(alignrun_command(*args), cwd=cwd, env=cli_env(**env), stdout=out, stderr=err)
+        return subprocess.Popen(alignrun_command(*args), cwd=cwd, env=cli_env(**env), stdout=out, stderr=err,
+                                preexec_fn=_ctrl_c_as_in_a_terminal)
 
 
 # ------------------------------------------------------------------------------------------ results
