@@ -189,9 +189,12 @@ def test_workers_run_in_separate_processes_with_divided_cores(tmp_path: Path, mo
     seen = calls(root)
     assert len(seen) == 4 and os.getpid() not in {c["pid"] for c in seen}
     assert {c["threads"] for c in seen} == {max(1, cpu.choose_threads().threads // 2)}
-    # each worker process keeps to its own share of the CPUs (disjoint where there are 2 or more)
+    # each worker process keeps to its own share of the CPUs (disjoint where there are 2 or more); which of the two
+    # workers takes which trial is up to the pool, so one worker may have run them all
     masks = {c["pid"]: c["cpus"] for c in seen}
-    assert sorted(masks.values()) == sorted(cpu.worker_shares(cpu.affinity_cpus(), 2))
+    shares = cpu.worker_shares(cpu.affinity_cpus(), 2)
+    assert all(m in shares for m in masks.values())
+    assert len({tuple(m) for m in masks.values()}) == len(masks)
 
 
 def test_ray_missing_names_the_extra(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
