@@ -59,8 +59,7 @@ def response_mask(response_ids: torch.Tensor, eos_id: int) -> torch.Tensor:
 def decoder_start(policy: Policy) -> int | None:
     """The decoder start token (models.neutral_generation_settings kept it from the saved settings or config);
     None for a decoder-only model, which continues the prompt."""
-    start = policy.lm.generation_config.decoder_start_token_id
-    return None if policy.causal else int(start)
+    return None if policy.causal else int(policy.lm.generation_config.decoder_start_token_id)
 
 
 @torch.no_grad()
@@ -110,8 +109,9 @@ def sample(policy: Policy, prompt_ids: torch.Tensor, prompt_mask: torch.Tensor, 
     # [B, 1 + T]: a causal model's output repeats the prompt; its last token is where the reply starts
     sequences = out.sequences[:, prompt_ids.shape[1] - 1:] if policy.causal else out.sequences
     # log-softmax at the sampled token, z_a - logsumexp(z), step by step from the raw logits: no [B, T, V] copy
-    logp = torch.stack([step.float().gather(1, token[:, None]).squeeze(1) - torch.logsumexp(step.float(), dim=-1)
-                        for step, token in zip(out.logits, sequences[:, 1:].T, strict=True)], dim=1)
+    steps = (step.float() for step in out.logits)
+    logp = torch.stack([z.gather(1, token[:, None]).squeeze(1) - torch.logsumexp(z, dim=-1)
+                        for z, token in zip(steps, sequences[:, 1:].T, strict=True)], dim=1)
     values = None
     if with_values:
         # [B, T, H] the decoder's last layer step by step (a causal model's first step covers the whole prompt)
