@@ -6,7 +6,7 @@ import argparse
 import sys
 from collections.abc import Sequence
 
-from alignrun import console, cpu
+from alignrun import console
 from alignrun.errors import UserError
 
 
@@ -135,7 +135,6 @@ def _dispatch(args: argparse.Namespace) -> int:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    cpu.configure_openmp()  # before anything loads torch: OpenMP reads its waiting policy once, when loaded
     parser = build_parser()
     args = parser.parse_args(argv)
     console.setup(args.debug)

@@ -1,7 +1,9 @@
-"""The CPU share of this process: how many threads to use, OpenMP's waiting policy, and worker CPU shares.
+"""The CPU share of this process: how many threads to use, how many while other programs are busy, and worker
+CPU shares. Imports no torch (the thread count is applied through a callback).
 
-Imports no torch: `configure_openmp` must run before torch loads OpenMP (libgomp reads OMP_WAIT_POLICY once,
-when it is loaded), so the command line calls it first thing.
+OpenMP's waiting policy is left as it is: with libgomp's default, threads spin briefly before they sleep, the
+fastest on an idle machine; spinning only hurts when another program holds a CPU a sibling thread waits for,
+and then ThreadGovernor has already lowered the thread count (scripts/bench_contention.py measures both).
 """
 
 from __future__ import annotations
@@ -10,21 +12,12 @@ import contextlib
 import math
 import os
 import tempfile
-from collections.abc import Iterator, MutableMapping
+import time
+from collections.abc import Callable, Iterator, MutableMapping
 from dataclasses import dataclass
 from pathlib import Path
 
 CGROUP_ROOT = Path("/sys/fs/cgroup")
-
-
-def configure_openmp(environ: MutableMapping[str, str] = os.environ) -> str:
-    """OpenMP threads sleep while they wait (OMP_WAIT_POLICY=PASSIVE) unless the user chose a policy: spinning
-    threads take the cores other work on a shared machine needs (scripts/bench_contention.py measures it).
-    Returns the policy in force and who chose it."""
-    if environ.get("OMP_WAIT_POLICY"):
-        return f"{environ['OMP_WAIT_POLICY']} (set by the user)"
-    environ["OMP_WAIT_POLICY"] = "PASSIVE"
-    return "PASSIVE (alignrun's default)"
 
 
 def affinity_cpus() -> list[int]:
@@ -86,6 +79,7 @@ def cgroup_cpu_quota(root: Path = CGROUP_ROOT, proc_cgroup: Path = Path("/proc/s
 class ThreadChoice:
     threads: int
     reason: str
+    adaptive: bool = False  # alignrun chose the count, so ThreadGovernor may lower it while other work runs
 
 
 def choose_threads(requested: int = 0, environ: MutableMapping[str, str] = os.environ,
@@ -108,7 +102,7 @@ def choose_threads(requested: int = 0, environ: MutableMapping[str, str] = os.en
     if local.isdigit() and int(local) > 1:
         reason += f", shared by {local} processes on this machine"
         threads = max(1, threads // int(local))
-    return ThreadChoice(threads, reason)
+    return ThreadChoice(threads, reason + "; fewer while other programs keep some of them busy", adaptive=True)
 
 
 def worker_shares(cpus: list[int], workers: int) -> list[list[int]]:
@@ -157,3 +151,83 @@ def claimed_share(shares: list[list[int]], key: str) -> Iterator[list[int] | Non
             handle.close()
         return
     yield None
+
+
+def busy_seconds(cpus: list[int], stat: Path = Path("/proc/stat")) -> float | None:
+    """CPU seconds the given CPUs spent busy since boot, by every process: user, nice, system, irq, softirq and
+    steal from /proc/stat's per-CPU lines, in USER_HZ ticks (proc(5)); None where there is no /proc/stat."""
+    text = _read(stat)
+    if text is None:
+        return None
+    wanted, ticks = {f"cpu{c}" for c in cpus}, 0
+    for line in text.splitlines():
+        fields = line.split()
+        if fields and fields[0] in wanted:
+            user, nice, system, _idle, _iowait, irq, softirq, steal = (int(f) for f in fields[1:9])
+            ticks += user + nice + system + irq + softirq + steal
+    return ticks / os.sysconf("SC_CLK_TCK")
+
+
+class ThreadGovernor:
+    """Between steps, torch's thread count = the CPUs this process may use minus the CPUs other processes kept
+    busy since the last call (rounded, at least one), so OpenMP threads never spin waiting for a sibling that
+    another program holds off its CPU; with the machine to itself the process gets every CPU back.
+
+    Other processes' use = busy seconds of this process's CPUs (`busy_seconds`) minus this process's own CPU
+    seconds, over the wall time between calls."""
+
+    MIN_INTERVAL_S = 0.1  # shorter intervals hold a handful of 10 ms ticks: too coarse to act on
+    MIN_OWN_SHARE = 0.25  # of one CPU: below it the interval was mostly this process waiting, not working
+
+    def __init__(self, most: int, cpus: list[int], apply: Callable[[int], None],
+                 busy: Callable[[], float | None] | None = None, clock: Callable[[], float] = time.monotonic,
+                 own: Callable[[], float] = lambda: sum(os.times()[:2])) -> None:
+        self.most, self.threads, self.apply = most, most, apply
+        self.busy = busy or (lambda: busy_seconds(cpus))
+        self.clock, self.own = clock, own
+        self.last = self._sample()
+
+    def _sample(self) -> tuple[float, float | None, float]:
+        return self.clock(), self.busy(), self.own()
+
+    def others(self) -> float | None:
+        """CPUs other processes used since the last call, while this process worked; None until enough time
+        has passed, and for an interval in which this process hardly ran (its own pause says nothing about
+        the competition its work meets)."""
+        wall = self.clock() - self.last[0]
+        if wall < self.MIN_INTERVAL_S:  # cheap: called inside loops, it reads /proc/stat only now and then
+            return None
+        now = self._sample()
+        wall, busy = now[0] - self.last[0], None if now[1] is None or self.last[1] is None else now[1] - self.last[1]
+        if busy is None:
+            return None
+        own = now[2] - self.last[2]
+        self.last = now
+        if own < self.MIN_OWN_SHARE * wall:  # this process hardly ran (paused, waiting on input): no evidence
+            return None
+        return max(0.0, busy - own) / wall
+
+    def __call__(self) -> int:
+        """Set and return the thread count for the next stretch of work."""
+        others = self.others()
+        if others is not None:
+            threads = max(1, min(self.most, self.most - math.floor(others + 0.5)))
+            if threads != self.threads:
+                self.apply(threads)
+                self.threads = threads
+        return self.threads
+
+
+_governor: ThreadGovernor | None = None
+
+
+def govern(governor: ThreadGovernor | None) -> None:
+    """Make `governor` the one `rebalance` consults (None: the thread count stays as set)."""
+    global _governor
+    _governor = governor
+
+
+def rebalance() -> None:
+    """At a step or batch boundary: let the governor, if there is one, set the thread count for what follows."""
+    if _governor is not None:
+        _governor()

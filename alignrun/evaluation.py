@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 import torch
 
-from alignrun import metrics
+from alignrun import cpu, metrics
 from alignrun.config import Experiment
 from alignrun.models import Policy
 from alignrun.rollout import frozen_encoding, response_mask, sample
@@ -51,6 +51,7 @@ def _generate(policy: Policy, prompts: list[str], cfg: Experiment, device: torch
     ids_out: list[list[int]] = []
     sums: dict[str, list[torch.Tensor]] = {k: [] for k in ("logp", "kl", "kl_exact", "ref_nll", "tokens")}
     for i in range(0, len(prompts), CHUNK):
+        cpu.rebalance()
         ids, mask = policy.encode(prompts[i: i + CHUNK], cfg.generation.max_prompt_tokens, device)
         hidden = frozen_encoding(policy, ids, mask)
         seqs, _, _ = sample(policy, ids, mask, cfg.generation.max_new_tokens, do_sample=do_sample,

@@ -41,6 +41,7 @@ from transformers.models.auto.modeling_auto import MODEL_FOR_CAUSAL_LM_MAPPING_N
 from transformers.pytorch_utils import Conv1D
 from trl.trainer.utils import disable_dropout_in_model
 
+from alignrun import cpu
 from alignrun.config import BaseSection, LoraSection, ReferenceSection
 from alignrun.cpu import ThreadChoice, choose_threads
 from alignrun.errors import UserError
@@ -75,9 +76,12 @@ def pick_device(section: BaseSection) -> torch.device:
 
 
 def set_threads(threads: int) -> ThreadChoice:
-    """torch's thread count: base.threads, else what the user set, else the CPUs this process may use."""
+    """torch's thread count: base.threads, else what the user set, else the CPUs this process may use, lowered
+    between steps while other programs keep some of them busy (cpu.ThreadGovernor)."""
     choice = choose_threads(threads)
     torch.set_num_threads(choice.threads)
+    cpu.govern(cpu.ThreadGovernor(choice.threads, cpu.affinity_cpus(), torch.set_num_threads)
+               if choice.adaptive else None)
     return choice
 
 

@@ -12,9 +12,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import torch
-from transformers import GenerationConfig, PreTrainedTokenizerBase
+from transformers import GenerationConfig, PreTrainedTokenizerBase, StoppingCriteria, StoppingCriteriaList
 from trl.trainer.utils import selective_log_softmax
 
+from alignrun import cpu
 from alignrun.errors import UserError
 from alignrun.models import Policy, decoder_states, encoder_outputs
 
@@ -83,6 +84,15 @@ def generation_settings(policy: Policy, max_new_tokens: int, do_sample: bool) ->
     )
 
 
+class _Rebalance(StoppingCriteria):
+    """Never stops generation: between tokens it lets cpu.rebalance adjust the thread count, so a long sampling
+    pass reacts to other programs within a fraction of a second rather than at the next step."""
+
+    def __call__(self, input_ids: torch.Tensor, scores: torch.Tensor, **kwargs: object) -> torch.Tensor:
+        cpu.rebalance()
+        return torch.zeros(input_ids.shape[0], dtype=torch.bool, device=input_ids.device)
+
+
 @torch.no_grad()
 def sample(policy: Policy, prompt_ids: torch.Tensor, prompt_mask: torch.Tensor, max_new_tokens: int,
            do_sample: bool = True, with_values: bool = True, encoder_hidden: torch.Tensor | None = None,
@@ -101,7 +111,8 @@ def sample(policy: Policy, prompt_ids: torch.Tensor, prompt_mask: torch.Tensor, 
                         "generation.max_prompt_tokens or generation.max_new_tokens")
     with decoder_states(policy.lm) as states:
         out = policy.lm.generate(input_ids=prompt_ids, attention_mask=prompt_mask,
-                                 generation_config=generation_settings(policy, max_new_tokens, do_sample), **reuse)
+                                 generation_config=generation_settings(policy, max_new_tokens, do_sample),
+                                 stopping_criteria=StoppingCriteriaList([_Rebalance()]), **reuse)
     if not all(raw is used or torch.equal(raw, used) for raw, used in zip(out.logits, out.scores, strict=True)):
         raise UserError(f"base.model: generating with {policy.lm.config.name_or_path} changed the model's "
                         "distribution (a logits processor was active), so the stored log-probs would not be those of "

@@ -304,8 +304,9 @@ def _run_ray(jobs: list[Job], runner: TrialRunner, workers: int, address: str | 
         # a local cluster's trials share this machine: each task takes a free share of its CPUs (disjoint masks)
         shares = [] if address else cpu.worker_shares(cpu.affinity_cpus(), workers)
         key = f"sweep-{os.getpid()}"
-        # Ray starts its worker processes itself: they get the command's OpenMP waiting policy from the start
-        waiting = {"env_vars": {"OMP_WAIT_POLICY": os.environ.get("OMP_WAIT_POLICY", "PASSIVE")}}
+        # Ray starts its worker processes itself: they get the user's OpenMP waiting policy, if any, from the start
+        policy = os.environ.get("OMP_WAIT_POLICY")
+        waiting = {"env_vars": {"OMP_WAIT_POLICY": policy}} if policy else None
         pending = {}
         for job in jobs:
             cfg = _with_threads(job.trial.config, min(job.trial.config.base.threads or share, largest))

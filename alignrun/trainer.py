@@ -22,7 +22,7 @@ from accelerate import Accelerator
 from trl.trainer.utils import entropy_from_logits, selective_log_softmax
 
 from alignrun import advantages as baselines
-from alignrun import console, evaluation, html_report, ppo, tracking
+from alignrun import console, cpu, evaluation, html_report, ppo, tracking
 from alignrun.budget import emulated_bf16_warning
 from alignrun.checkpoint import (
     checkpoint_step,
@@ -162,6 +162,7 @@ def ppo_update(net: torch.nn.Module, optimizer: torch.optim.Optimizer, accelerat
     totals: dict[str, list[float]] = {k: [] for k in kept if k != "kl_loss" or kl_in_loss}
     for epoch in order:
         for idx in epoch:
+            cpu.rebalance()
             part = ro.select(idx)
             logits, logp, values = policy_forward(net, part, cfg, device)
             mask = part.response_mask
@@ -255,7 +256,7 @@ def train_step(policy: Policy, net: torch.nn.Module, optimizer: torch.optim.Opti
         "kl_mean": seq_kl, "beta": beta, **stats,
         "length_mean": tokens / (len(prompts) * accelerator.num_processes), "truncated_share": truncated,
         "rollout_s": t1 - t0, "reward_s": t2 - t1, "update_s": t3 - t2, "step_s": t3 - t0,
-        "tokens_per_s": tokens / max(t3 - t0, 1e-9),
+        "tokens_per_s": tokens / max(t3 - t0, 1e-9), "threads": torch.get_num_threads(),
     }
 
 
@@ -376,6 +377,7 @@ def _run_locked(cfg: Experiment, out: Path, folder: RunFolder, accelerator: Acce
                     prompts = step_prompts(split.train, step, cfg.ppo.prompts_per_step, cfg.run.seed)
                     mine = prompts[accelerator.process_index * per_proc:(accelerator.process_index + 1) * per_proc]
                     before_step = snapshot(net, optimizer, controller)
+                    cpu.rebalance()
                     try:
                         row = train_step(policy, net, optimizer, accelerator, scorer, controller, mine, cfg, step, device)
                     except NonFinite as exc:

@@ -1,8 +1,7 @@
 """What every benchmark script shares: offline start-up, the machine description, random bench models, timing
 and CPU-time helpers, and writing results as strict JSON.
 
-Import it first (before torch): it applies alignrun's start-up thread settings, as the `alignrun` command does,
-unless the script is measuring the old defaults (ALIGNRUN_BENCH_DEFAULTS=old in the environment).
+Import it first (before torch): it makes the scripts offline and puts this checkout's alignrun on the path.
 """
 
 from __future__ import annotations
@@ -25,11 +24,6 @@ os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
 os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
 sys.path.insert(1, str(Path(__file__).resolve().parent.parent))  # alignrun, when it is not installed
 
-from alignrun import cpu  # noqa: E402  (imports no torch)
-
-if os.environ.get("ALIGNRUN_BENCH_DEFAULTS") != "old":
-    cpu.configure_openmp()  # the `alignrun` command's start-up: before torch loads OpenMP
-
 import torch  # noqa: E402
 from tokenizers import Tokenizer, models, pre_tokenizers, processors  # noqa: E402
 from transformers import (  # noqa: E402
@@ -41,7 +35,10 @@ from transformers import (  # noqa: E402
     T5ForConditionalGeneration,
 )
 
-from alignrun import budget  # noqa: E402
+from alignrun import (
+    budget,  # noqa: E402
+    cpu,  # noqa: E402  (imports no torch)
+)
 
 PAD_ID, EOS_ID, UNK_ID = 0, 1, 2
 PROMPTS, PROMPT_TOKENS, NEW_TOKENS = 16, 64, 32  # one step's batch: prompts x prompt tokens -> new tokens

@@ -1,20 +1,22 @@
-"""Step time on a busy machine: alignrun's old thread defaults against the current ones, idle and with a
-competing 2-thread CPU job, measured in one run, interleaved.
+"""Step time on a busy machine: three thread settings, idle and with a competing 2-thread CPU job, measured in
+one run, interleaved.
 
     python scripts/bench_contention.py [--shape tiny] [--rounds 4] [--steps 3] [--out bench-results/bench-contention.json]
 
-Two worker processes each hold one bench model (scripts/_bench_common.py shapes) and time PPO steps
+Three worker processes each hold one bench model (scripts/_bench_common.py shapes) and time PPO steps
 (alignrun.trainer.train_step, the `ours` variant of scripts/bench.py) when asked:
 
-    old   the defaults before alignrun.cpu: OMP_WAIT_POLICY unset (libgomp spins while it waits) and
-          torch threads = the CPUs in the affinity mask
-    new   the `alignrun` command's start-up: OMP_WAIT_POLICY=PASSIVE set before torch loads, threads from
-          alignrun.cpu.choose_threads (affinity mask, cgroup quota)
+    old       the defaults before alignrun.cpu: OMP_WAIT_POLICY unset (libgomp spins a while, then sleeps) and
+              torch threads = the CPUs in the affinity mask
+    passive   the previous default: OMP_WAIT_POLICY=PASSIVE (threads sleep at once) and threads from
+              alignrun.cpu.choose_threads (affinity mask, cgroup quota)
+    adaptive  the `alignrun` command now: OMP_WAIT_POLICY unset, threads from choose_threads, and before every
+              step alignrun.cpu.ThreadGovernor lowers them by the CPUs other programs kept busy
 
 The competing job is a numpy float64 matmul loop (1024 x 1024) with 2 BLAS threads in its own process. Each
 round times `--steps` steps of each worker idle and loaded (orders alternate between rounds; the competitor
 gets a second to start). Figures are medians over rounds; the ratios that matter (loaded / idle for each
-setting, new / old idle) are formed within this one run, so other work on the machine moves both sides.
+setting, each setting's idle / old idle) are formed within this one run, so other work on the machine moves both sides.
 
 A spin check shows that the waiting policy took effect in each worker: 300 small matmuls with 2 ms sleeps
 between them, the process CPU seconds they cost (threads spinning through the sleeps add CPU time).
@@ -35,6 +37,7 @@ from typing import Any
 
 import _bench_common as common
 
+SETTINGS = ("old", "passive", "adaptive")
 COMPETITOR = """
 import numpy as np
 a = np.random.default_rng(0).standard_normal((1024, 1024))
@@ -49,11 +52,15 @@ def worker(model: Path, setting: str) -> None:
     import torch
     from accelerate import Accelerator
 
+    from alignrun import cpu
+
     if setting == "old":
         torch.set_num_threads(len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1)
         reason = "the CPUs in the affinity mask (old default)"
     else:
-        reason = common.set_bench_threads(0)
+        reason = common.set_bench_threads(0)  # as `alignrun run` does: for adaptive, with its ThreadGovernor
+        if setting == "passive":
+            cpu.govern(None)
     common.quiet_transformers()
     setup = bench.make_setup("ours", model, Accelerator(cpu=True))
     bench.run_step(setup.warm_up(), 0)
@@ -66,8 +73,9 @@ def worker(model: Path, setting: str) -> None:
             rows = []
             for _ in range(int(arg)):
                 step += 1
+                cpu.rebalance()  # as the trainer does before every step (nothing for old and passive)
                 row = bench.run_step(setup, step)
-                rows.append({"wall": row["step"], "cpu": row["cpu"]})
+                rows.append({"wall": row["step"], "cpu": row["cpu"], "threads": torch.get_num_threads()})
             print(json.dumps(rows), flush=True)
         elif command == "spin":
             def loop() -> None:
@@ -83,9 +91,9 @@ def worker(model: Path, setting: str) -> None:
 
 class Worker:
     def __init__(self, model: Path, setting: str) -> None:
-        env = {k: v for k, v in os.environ.items() if k not in ("OMP_WAIT_POLICY", "ALIGNRUN_BENCH_DEFAULTS")}
-        if setting == "old":
-            env["ALIGNRUN_BENCH_DEFAULTS"] = "old"  # _bench_common then leaves OMP_WAIT_POLICY unset
+        env = {k: v for k, v in os.environ.items() if k != "OMP_WAIT_POLICY"}
+        if setting == "passive":
+            env["OMP_WAIT_POLICY"] = "PASSIVE"  # before the worker loads torch: libgomp reads it once
         self.proc = subprocess.Popen([sys.executable, __file__, "--worker", setting, "--model", str(model)],
                                      stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True, env=env)
         self.info = self.ask(None)
@@ -122,7 +130,8 @@ def start_competitor() -> subprocess.Popen:
 def summary(rows: list[dict[str, float]]) -> dict[str, float]:
     walls = [r["wall"] for r in rows]
     return {"steps": len(rows), "median_s": statistics.median(walls), "mean_s": statistics.fmean(walls),
-            "max_s": max(walls), "min_s": min(walls), "cpu_median_s": statistics.median(r["cpu"] for r in rows)}
+            "max_s": max(walls), "min_s": min(walls), "cpu_median_s": statistics.median(r["cpu"] for r in rows),
+            "steps_by_threads": {str(t): sum(r["threads"] == t for r in rows) for t in sorted({r["threads"] for r in rows})}}
 
 
 def main() -> int:
@@ -131,7 +140,7 @@ def main() -> int:
     ap.add_argument("--rounds", type=int, default=4, help="rounds of idle and loaded blocks")
     ap.add_argument("--steps", type=int, default=3, help="steps per worker per block")
     ap.add_argument("--out", default="bench-results/bench-contention.json")
-    ap.add_argument("--worker", choices=["old", "new"], help=argparse.SUPPRESS)
+    ap.add_argument("--worker", choices=SETTINGS, help=argparse.SUPPRESS)
     ap.add_argument("--model", type=Path, help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.worker:
@@ -139,22 +148,22 @@ def main() -> int:
         return 0
     log = common.Log()
     setup = common.machine()
-    times: dict[tuple[str, str], list[dict[str, float]]] = {(s, load): [] for s in ("old", "new")
+    times: dict[tuple[str, str], list[dict[str, float]]] = {(s, load): [] for s in SETTINGS
                                                             for load in ("idle", "loaded")}
     with tempfile.TemporaryDirectory(prefix="alignrun-contention-") as tmp:
         log(f"{args.shape}: building the model, starting the two workers")
         model = common.build_model(common.SHAPES[args.shape], Path(tmp) / args.shape)
-        workers = {"old": Worker(model, "old"), "new": Worker(model, "new")}
+        workers = {name: Worker(model, name) for name in SETTINGS}
         try:
             for r in range(args.rounds):
                 loads = ("idle", "loaded") if r % 2 == 0 else ("loaded", "idle")
                 for load in loads:
                     competitor = start_competitor() if load == "loaded" else None
                     try:
-                        for name in (("old", "new") if r % 2 == 0 else ("new", "old")):
+                        for name in (SETTINGS if r % 2 == 0 else SETTINGS[::-1]):
                             rows = workers[name].ask(f"steps {args.steps}")
                             times[name, load] += rows
-                            log(f"round {r + 1} {load:<6} {name}: " + ", ".join(f"{x['wall']:.2f}" for x in rows) + " s")
+                            log(f"round {r + 1} {load:<6} {name}: " + ", ".join(f"{x['wall']:.2f} ({x['threads']})" for x in rows) + " s")
                     finally:
                         if competitor is not None:
                             competitor.kill()
@@ -166,23 +175,20 @@ def main() -> int:
                 w.close()
     table = {f"{s} {load}": summary(rows) for (s, load), rows in times.items()}
     med = {key: value["median_s"] for key, value in table.items()}
-    ratios = {
-        "old: loaded / idle": common.ratio(med["old loaded"], med["old idle"]),
-        "new: loaded / idle": common.ratio(med["new loaded"], med["new idle"]),
-        "idle: new / old": common.ratio(med["new idle"], med["old idle"]),
-        "loaded: new / old": common.ratio(med["new loaded"], med["old loaded"]),
-    }
+    ratios = {f"{s}: loaded / idle": common.ratio(med[f"{s} loaded"], med[f"{s} idle"]) for s in SETTINGS}
+    ratios |= {f"idle: {s} / old": common.ratio(med[f"{s} idle"], med["old idle"]) for s in SETTINGS[1:]}
+    ratios |= {f"loaded: {s} / old": common.ratio(med[f"{s} loaded"], med["old loaded"]) for s in SETTINGS[1:]}
     setup["load_average_end"] = os.getloadavg()
     results = {"setup": {**setup, "shape": args.shape, "rounds": args.rounds, "steps_per_block": args.steps,
                          "competitor": "numpy float64 1024x1024 matmul loop, 2 BLAS threads", "wall_s": log.elapsed()},
                "workers": info, "times": table, "ratios": ratios, "spin_check": spin,
-               "targets": {"new: loaded / idle": "<= 2.5", "idle: new / old": "<= 1.05"}}
+               "targets": {"adaptive: loaded / idle": "<= 2.5", "idle: adaptive / old": "<= 1.05"}}
     out = common.write_results(args.out, results)
-    print(f"\n{'':<12}{'median s':>10}{'mean s':>10}{'max s':>10}{'cpu s':>10}")
+    print(f"\n{'':<17}{'median s':>10}{'mean s':>10}{'max s':>10}{'cpu s':>10}")
     for key, row in table.items():
-        print(f"{key:<12}{row['median_s']:>10.2f}{row['mean_s']:>10.2f}{row['max_s']:>10.2f}{row['cpu_median_s']:>10.2f}")
+        print(f"{key:<17}{row['median_s']:>10.2f}{row['mean_s']:>10.2f}{row['max_s']:>10.2f}{row['cpu_median_s']:>10.2f}")
     for key, value in ratios.items():
-        print(f"{key:<20} {value:.2f}")
+        print(f"{key:<26} {value:.2f}")
     for name, s in spin.items():
         print(f"spin check {name} ({info[name]['omp_wait_policy']}, {info[name]['threads']} threads): "
               f"{s['cpu']:.2f} CPU s in {s['wall']:.2f} s")

@@ -16,7 +16,7 @@ import sys
 import time
 from pathlib import Path
 
-import _bench_common as common  # first: offline settings and alignrun's start-up thread settings
+import _bench_common as common  # first: offline settings
 
 
 def main() -> int:
@@ -30,7 +30,7 @@ def main() -> int:
     if args.cache:
         os.environ["ALIGNRUN_CACHE"] = args.cache
     from alignrun.demo.build import build_demo
-    from alignrun.demo.run import run_demo
+    from alignrun.demo.run import answer_fit, run_demo
 
     setup = common.machine()
     out = Path(args.out)
@@ -61,12 +61,17 @@ def main() -> int:
         "within +/-0.30": lambda v: abs(v) <= 0.3, ">= 0.80": lambda v: v >= 0.8,
     }
     rows = [{"criterion": c, "value": round(v, 4), "target": t, "pass": bool(ok[t](v))} for c, v, t in checks]
+    pairs = [json.loads(line) for line in (out / "pairs.jsonl").read_text().splitlines()]
+    fit = answer_fit(pairs)
     print(f"build {built:.0f} s, total (build + preflight + training + evaluation) {total:.0f} s, "
           f"training steps {report['run']['steps']}, held-out prompts {ev['prompts']} x {ev['samples_per_prompt']}")
     for r in rows:
         print(f"  {'PASS' if r['pass'] else 'FAIL'}  {r['criterion']:45} {r['value']:>9}  (target {r['target']})")
+    if fit is not None:
+        print(f"  info  greedy replies that answer the question asked: before {fit[0]:.0%}, after {fit[1]:.0%}")
     common.write_results(out / "bench_demo.json", {"setup": setup, "build_s": built, "total_s": total,
-                                                   "checks": rows})
+                                                   "checks": rows,
+                                                   "answer_fit_before_after": fit})
     return 0 if all(r["pass"] for r in rows) else 1
 
 

@@ -371,7 +371,7 @@ def test_quick_causal_demo_lowers_harm_by_both_judges(tmp_path: Path, capsys) ->
     from alignrun.demo.run import run_demo
 
     out = tmp_path / "demo"
-    assert run_demo(out=str(out), quick=True, quiet=True, overrides=[], causal=True) == 0
+    assert run_demo(out=str(out), quick=True, quiet=True, overrides=["base.threads=2"], causal=True) == 0  # fixed: see test_demo_run
     assert "harm mean (reward clf)" in capsys.readouterr().out
     report = json.loads((out / "report.json").read_text())
     assert report["model"]["base"].endswith("causal-base")

@@ -31,6 +31,7 @@ from alignrun.demo import build, scenario
 from alignrun.demo.build import (
     CLASSIFIER_LABELS,
     STAMP,
+    BaseRecipe,
     build_demo,
     build_tiny_seq2seq,
     build_tokenizer,
@@ -78,8 +79,11 @@ def test_heldout_prompts_are_distinct_and_never_training_prompts(seed: int):
     train = set(scenario.training_prompts(600, seed))
     assert len(train) == 600
     supervised = {p.prompt for p in scenario.base_pairs(6000, seed)}
+    dropped = {p.prompt for p in scenario.base_pairs(6000, seed, word_dropout=BaseRecipe().word_dropout)}
+    assert len(dropped - supervised) > 1000  # word dropout writes prompts the templates alone do not
     for other_seed in (seed, seed + 1):
-        assert not set(scenario.heldout_prompts(80, other_seed)) & (train | supervised)
+        unseen = set(scenario.heldout_prompts(80, other_seed)) | set(scenario.probe_prompts(80, other_seed))
+        assert not unseen & (train | supervised | dropped)
 
 
 def test_too_many_distinct_prompts_is_refused():
@@ -353,7 +357,7 @@ def test_build_demo_reuses_its_cache_and_rebuilds_what_changed(tmp_path: Path, c
     # The base's fit and rude share are measured on the saved model, printed and kept in its stamp.
     assert "greedy replies that fit their prompt: held-out" in capsys.readouterr().err
     metrics = json.loads((paths.base / STAMP).read_text())["metrics"]
-    assert set(metrics) == {"heldout_fit_rate", "training_fit_rate", "sampled_rude_share"}
+    assert set(metrics) == {"heldout_fit_rate", "training_fit_rate", "probe_fit_rate", "sampled_rude_share"}
     assert metrics["heldout_fit_rate"] == 0.0  # a random untrained T5 writes no scenario reply
     rows = [json.loads(line) for line in paths.prompts.read_text().splitlines()]
     held = [json.loads(line)["prompt"] for line in paths.heldout.read_text().splitlines()]

@@ -52,7 +52,7 @@ def _perturb_lora_b(policy) -> None:
     with torch.no_grad():
         for name, p in policy.lm.named_parameters():
             if "lora_B" in name:
-                p.normal_(std=0.05, generator=torch.Generator().manual_seed(len(name)))
+                p.normal_(std=0.2, generator=torch.Generator().manual_seed(len(name)))
 
 
 PROMPTS = [f"Customer {i}: my order number {i * 7} has not arrived at the {['north', 'south', 'east'][i % 3]} depot."

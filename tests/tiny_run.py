@@ -38,7 +38,7 @@ MODULE = "tests.tiny_run"
 OFFLINE_ENV = {"HF_HUB_OFFLINE": "1", "HF_DATASETS_OFFLINE": "1", "TRANSFORMERS_OFFLINE": "1",
                "HF_EVALUATE_OFFLINE": "1", "TOKENIZERS_PARALLELISM": "false"}
 # metrics.jsonl fields that measure time rather than training: they differ between any two runs.
-TIMING_FIELDS = frozenset({"rollout_s", "reward_s", "update_s", "step_s", "tokens_per_s"})
+TIMING_FIELDS = frozenset({"rollout_s", "reward_s", "update_s", "step_s", "tokens_per_s", "threads"})  # machine, not run
 
 # ------------------------------------------------------------------------------------ reward callables
 

@@ -71,6 +71,7 @@ class BaseRecipe:
 
     pairs: int = 25600
     rude_share: float = 0.35
+    word_dropout: float = 0.15  # each literal word of a prompt template left out with this probability
     vocab_size: int = 1200
     d_model: int = 128
     d_kv: int = 16
@@ -214,7 +215,7 @@ def _batches(lengths: Sequence[int], size: int, rng: random.Random, window: int 
 def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int, quiet: bool = False) -> dict[str, float]:
     """Teacher-forced training of a small T5 on scenario pairs (a); saves model, tokenizer, generation config."""
     tokenizer = AutoTokenizer.from_pretrained(tokenizer_dir)
-    pairs = scenario.base_pairs(recipe.pairs, seed, recipe.rude_share)
+    pairs = scenario.base_pairs(recipe.pairs, seed, recipe.rude_share, recipe.word_dropout)
     enc = tokenizer([p.prompt for p in pairs], padding=True, return_tensors="pt")
     labels = tokenizer([p.reply for p in pairs], padding=True, return_tensors="pt").input_ids
     labels[labels == PAD_ID] = -100  # no loss on padding
@@ -304,15 +305,18 @@ def measure_base(folder: Path, seed: int) -> dict[str, float]:
     heldout = scenario.heldout_prompts(FIT_PROMPTS, seed)
     held_fit, misses = reply_fit(model, tokenizer, heldout)
     train_fit, _ = reply_fit(model, tokenizer, scenario.training_prompts(FIT_PROMPTS, seed))
+    probe_fit, _ = reply_fit(model, tokenizer, scenario.probe_prompts(FIT_PROMPTS, seed))
     with torch.random.fork_rng(devices=[]), torch.no_grad():
         torch.manual_seed(seed)
         seqs = model.generate(**tokenizer(heldout, padding=True, return_tensors="pt"))  # the saved sampling settings
     sampled = tokenizer.batch_decode(seqs, skip_special_tokens=True)
     rude = sum(r.startswith(scenario.RUDE_OPENERS) for r in sampled) / len(sampled)
     common = ", ".join(f"{why} {n}" for why, n in misses.most_common(3)) or "none"
-    _log(f"  base greedy replies that fit their prompt: held-out {held_fit:.0%}, training {train_fit:.0%} "
-         f"({FIT_PROMPTS} prompts each; held-out misses by kind: {common}); sampled replies rude: {rude:.0%}")
-    return {"heldout_fit_rate": held_fit, "training_fit_rate": train_fit, "sampled_rude_share": rude}
+    _log(f"  base greedy replies that fit their prompt: held-out {held_fit:.0%}, training {train_fit:.0%}, "
+         f"probe phrasings {probe_fit:.0%} ({FIT_PROMPTS} prompts each; held-out misses by kind: {common}); "
+         f"sampled replies rude: {rude:.0%}")
+    return {"heldout_fit_rate": held_fit, "training_fit_rate": train_fit, "probe_fit_rate": probe_fit,
+            "sampled_rude_share": rude}
 
 
 # --- the demo classifier ---------------------------------------------------------------------------------
@@ -479,7 +483,7 @@ def build_demo(cache: Path | None = None, seed: int = 0, quiet: bool = False) ->
     start, cpu = time.perf_counter(), time.process_time()
 
     def make_tokenizer(tmp: Path) -> dict[str, float]:
-        pairs = scenario.base_pairs(base.pairs, seed, base.rude_share)
+        pairs = scenario.base_pairs(base.pairs, seed, base.rude_share, base.word_dropout)
         build_tokenizer([p.prompt for p in pairs] + [p.reply for p in pairs], tmp, base.vocab_size)
         return {}
 
@@ -487,7 +491,8 @@ def build_demo(cache: Path | None = None, seed: int = 0, quiet: bool = False) ->
     # thread made a training step 10x slower (threads waiting on each other) instead of faster.
     with _torch_settings(threads=1):
         _ensure("tokenizer", paths.tokenizer, {"artefact": "tokenizer", "seed": seed, "pairs": base.pairs,
-                                               "rude_share": base.rude_share, "vocab_size": base.vocab_size},
+                                               "rude_share": base.rude_share, "vocab_size": base.vocab_size,
+                                               "word_dropout": base.word_dropout},
                 make_tokenizer)
         _ensure("prompt files", paths.prompts.parent, {"artefact": "data", "seed": seed, **asdict(data)},
                 lambda tmp: write_prompts(tmp, data, seed))

@@ -35,9 +35,26 @@ def run_demo(out: str | None, quick: bool, quiet: bool, overrides: list[str], ov
     print(summary_text(report))
     print("\nsample pairs (held-out prompt -> greedy reply before / after):")
     pairs = [json.loads(ln) for ln in (target / "pairs.jsonl").read_text().splitlines()]
+    fit = answer_fit(pairs)
+    if fit is not None:
+        print(f"\ngreedy replies that answer the question asked (the scenario's own check): before {fit[0]:.0%}, "
+              f"after {fit[1]:.0%} of {len(pairs)} held-out prompts")
     changed = [p for p in pairs if p["before"] != p["after"]] or pairs
     for p in sorted(changed, key=lambda p: p["harm_after"] - p["harm_before"])[:4]:
         print(f"\n  prompt: {p['prompt']}\n  before: {p['before']}  [harm {p['harm_before']:.2f}]"
               f"\n  after:  {p['after']}  [harm {p['harm_after']:.2f}]")
     print(f"\nrun folder: {target}  (report.html or report.md for people, report.json for `alignrun compare`)")
     return 0
+
+
+def answer_fit(pairs: list[dict]) -> tuple[float, float] | None:
+    """Shares of greedy replies before and after training that fit their prompt (scenario.reply_misfit: the
+    right reply family with the prompt's details copied; rude replies count as fitting); None when the prompts
+    are not the scenario's (a demo run with other data)."""
+    from alignrun.demo import scenario
+
+    try:
+        return tuple(sum(scenario.reply_misfit(p["prompt"], p[key]) is None for p in pairs) / len(pairs)
+                     for key in ("before", "after"))  # type: ignore[return-value]
+    except ValueError:
+        return None

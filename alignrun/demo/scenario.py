@@ -9,6 +9,7 @@ Four deterministic streams, each with its own seeded `random.Random`:
   training_prompts     (b) prompts for policy optimisation
   heldout_prompts      (c) evaluation prompts, written with prompt templates that (a) and (b) never use
   classifier_examples  (d) labelled replies for the harm classifier, partly in other phrasings
+  probe_prompts        (e) prompts in phrasings no other stream uses, only to check the demo base
 """
 
 from __future__ import annotations
@@ -60,6 +61,9 @@ INTENTS = (
          "Hello, this is {customer}. How is the repair of my {product} going?",
          "Good afternoon, is my {product} still in the workshop? It went in on {day}.",
          "When can I collect my {product}? You were replacing the {part}.",
+         "Is the {product} I brought in on {day} finished?",
+         "Hi, {customer} again. Has the workshop finished my {product} yet?",
+         "Any update on my {product}? The {part} needed work.",
          "Good morning, I'm checking on my {product} at {branch}. When can I collect it?"),
         ("{hi}, your {product} is on the stand at {branch}; {staff} expects it to be ready by {day2} afternoon.",
          "Thanks for checking in{cust}. The {product} needs one more test ride, so it will be ready on {day2}.",
@@ -74,6 +78,9 @@ INTENTS = (
          "Hello, {customer} here. Please book my {product} in for {day}.",
          "Hello, is an appointment possible on {day} for a {product}?",
          "Can I get an appointment at {branch} for my {product}?",
+         "Please reserve a workshop slot on {day} for my {product}.",
+         "Hi, it's {customer}. Is there a free service slot at {branch} on {day}?",
+         "I want my {product} serviced. Do you have time on {day}?",
          "I need an appointment for my {product}; is {day} possible at {branch}?"),
         ("{hi}, {day} at {time} is free at {branch}. I have pencilled your {product} in with {staff}.",
          "Sure{cust}, we can take the {product} on {day} at {time}. Please bring it to {branch}.",
@@ -88,6 +95,9 @@ INTENTS = (
          "Hi, it's {customer}. How much do you charge for a {part} on a {product}?",
          "Good afternoon, is fitting a new {part} on my {product} expensive?",
          "Can I get a price for a {part} for my {product}?",
+         "What's the price of a {part} for my {product}, fitted?",
+         "Hello, {customer} here. Is a new {part} for a {product} cheap?",
+         "I need a quote for a {part} on a {product}.",
          "Could I get a price for fitting a new {part} on a {product}?"),
         ("{hi}, a new {part} for the {product} is {price} crowns fitted, and members get ten percent off.",
          "Thanks for asking{cust}. Replacing the {part} on a {product} comes to {price} crowns including labour.",
@@ -102,6 +112,9 @@ INTENTS = (
          "Hello, {customer} here. Until what time is {branch} open on {day}?",
          "Quick question: is {branch} open on {day}?",
          "What are your opening hours on {day} at {branch}?",
+         "When do you open at {branch} on {day}?",
+         "Hi, {customer} here. What time does {branch} close on {day}?",
+         "Will {branch} be open on {day} morning?",
          "Quick question: what are the opening hours of {branch} on {day}?"),
         ("{hi}, {branch} is open from {open} to {close} on {day}.",
          "Thanks for asking{cust}. On {day} {branch} is open from {open} until {close}.",
@@ -116,6 +129,9 @@ INTENTS = (
          "Hello, this is {customer}; my {eproduct} {issue}.",
          "Hello, can you help? My {eproduct} {issue}.",
          "Since {day} my {eproduct} {issue}. Any idea why?",
+         "The battery of my {eproduct} {issue}. Is it broken?",
+         "Hi, it's {customer}. My {eproduct} {issue} after charging.",
+         "Why does my {eproduct} {issue}?",
          "Since last week my {eproduct} {issue}; can you help?"),
         ("{hi}, try a full charge with the original charger first. If the {eproduct} still {issue}, "
          "bring it to {branch} for a free battery test.",
@@ -133,6 +149,9 @@ INTENTS = (
          "Hello, it's {customer}; the {wheel} tyre of my {product} is flat.",
          "Can you take a look at the flat {wheel} tyre on my {product}?",
          "Hi, my {product} keeps going flat. Can you patch it?",
+         "My {product} has a flat {wheel} tyre. Can you repair it?",
+         "Hi, {customer} here. Can you fix a punctured {wheel} tyre today?",
+         "Do you repair flat tyres on a {product} at {branch}?",
          "The {wheel} tyre on my {product} keeps going flat. Can you take a look?"),
         ("{hi}, bring the {product} to {branch} and we will patch the {wheel} tyre in about twenty minutes.",
          "Thanks for writing{cust}. A puncture repair costs {price} crowns and {staff} can do it "
@@ -148,6 +167,9 @@ INTENTS = (
          "Hello, {customer} here. I lost my {item} at your shop on {day}.",
          "Hi, I think I left a {item} behind at {branch}. Has anyone found it?",
          "I can't find my {item}; maybe I dropped it at {branch} on {day}.",
+         "Has anyone found a {item} at {branch}? I was there on {day}.",
+         "Hi, it's {customer}. I left my {item} at {branch} when I picked up my {product}.",
+         "My {item} went missing after my visit to {branch}. Is it with you?",
          "Did I leave my {item} behind when I collected my {product}?"),
         ("{hi}, yes, a {item} turned up at {branch}. It is behind the counter with your name on it.",
          "Thanks for asking{cust}. {staff} found a {item} on {day}; you can collect it at {branch} any time "
@@ -164,6 +186,9 @@ INTENTS = (
          "Hello, it's {customer}. How much does it cost to become a member?",
          "Is the membership fee yearly, or do I pay once?",
          "I ride a {product} every day; is joining the co-op worth it?",
+         "What does it cost to join the co-op?",
+         "Hi, it's {customer}. Can I sign up as a member at {branch}?",
+         "Do co-op members get discounts on parts for a {product}?",
          "Is there a yearly fee to be a co-op member? I usually ride a {product}."),
         ("{hi}, membership is {fee} crowns a year and includes ten percent off parts plus free use of the "
          "tool bench at {branch}.",
@@ -181,6 +206,9 @@ INTENTS = (
          "Hello, {customer} here. The {part} you replaced on my {product} on {day} is broken.",
          "Your repair did not last; the {part} on my {product} came off after {n} days.",
          "Good afternoon, your repair failed: the {part} on my {product} is faulty again.",
+         "The repair on my {product} did not hold; the {part} failed on {day}.",
+         "Hi, {customer} here. My {product} broke again: the {part} you fitted is faulty.",
+         "I'm unhappy with the repair: the {part} on my {product} failed after {n} days.",
          "After your repair on {day}, the {part} on my {product} failed. What now?"),
         ("Sorry to hear that{cust}. Bring the {product} back to {branch} and {staff} will replace the {part} "
          "free of charge.",
@@ -198,6 +226,9 @@ INTENTS = (
          "Hello, it's {customer}. Can I rent a {rental} from {branch} on {day}?",
          "What does a {rental} cost to hire for {duration}?",
          "I'd like to hire a {rental} starting {day}. Is one free?",
+         "Is a {rental} available to rent at {branch} on {day}?",
+         "Hi, it's {customer}. What is the price to hire a {rental} for {duration}?",
+         "Could I borrow a {rental} from {branch} for {duration}?",
          "I'd like to borrow a {rental} for {duration} starting {day}. Is one free?"),
         ("{hi}, a {rental} costs {price} crowns for {duration}. I have reserved one at {branch} for {day}.",
          "Sure{cust}, we have a {rental} free on {day}. Bring a photo ID to {branch} when you pick it up.",
@@ -205,6 +236,22 @@ INTENTS = (
          "included."),
     ),
 )
+
+# One more phrasing per intent that no stream trains on, written before the demo base's recipe (extra training
+# phrasings, word dropout) was chosen and never used to choose it: a second check that the base answers the
+# question asked, besides the reserved held-out template.
+PROBE_TEMPLATES = {
+    "repair-status": "My {product} has been with you since {day}; is it done?",
+    "booking": "Would {day} work for servicing my {product}?",
+    "price": "Tell me the price of a {part} for a {product}, please.",
+    "opening-hours": "On {day}, from what time is {branch} open?",
+    "battery": "Something is wrong: my {eproduct} {issue}.",
+    "puncture": "There is a hole in the {wheel} tyre of my {product}; can you repair it?",
+    "lost-item": "Is my {item} in your lost property? I was at {branch} on {day}.",
+    "membership": "Tell me about co-op membership and its yearly cost.",
+    "complaint": "The {part} you put on my {product} on {day} is already broken.",
+    "rental": "Are there any {rental}s to rent on {day}?",
+}
 
 # Rude reply bodies; each follows one of RUDE_OPENERS.
 RUDE_BODIES = (
@@ -322,9 +369,25 @@ def _rude(rng: random.Random, slots: dict[str, str], openers: tuple[str, ...], b
     return f"{opener} {body}"
 
 
-def _prompt(rng: random.Random, heldout: bool) -> tuple[Intent, str, dict[str, str]]:
+def _drop_words(rng: random.Random, template: str, share: float) -> str:
+    """The template with each literal word left out with probability `share` (slot fields always stay), so that
+    the base learns a question from its content words rather than from a handful of fixed wordings."""
+    words = template.split(" ")
+    kept = [w for w in words if "{" in w or rng.random() >= share]
+    return " ".join(kept) if len(kept) >= 3 else template
+
+
+def _prompt(rng: random.Random, which: str = "training", drop: float = 0.0) -> tuple[Intent, str, dict[str, str]]:
+    """A prompt of a random intent from its training templates, its reserved held-out template, or its probe."""
     intent = rng.choice(INTENTS)
-    template = intent.prompts[-1] if heldout else rng.choice(intent.prompts[:-1])
+    if which == "heldout":
+        template = intent.prompts[-1]
+    elif which == "probe":
+        template = PROBE_TEMPLATES[intent.name]
+    else:
+        template = rng.choice(intent.prompts[:-1])
+    if drop:
+        template = _drop_words(rng, template, drop)
     slots = _slots(rng)
     named = "{customer}" in template
     slots["cust"] = f", {slots['customer']}" if named else ""
@@ -342,12 +405,13 @@ def _exact_flags(rng: random.Random, n: int, share: float) -> list[bool]:
     return flags
 
 
-def base_pairs(n: int, seed: int = 0, rude_share: float = 0.35) -> list[Pair]:
-    """(a) Supervised prompt/reply pairs: exactly round(rude_share * n) replies are rude."""
+def base_pairs(n: int, seed: int = 0, rude_share: float = 0.35, word_dropout: float = 0.0) -> list[Pair]:
+    """(a) Supervised prompt/reply pairs: exactly round(rude_share * n) replies are rude; with word_dropout, each
+    literal word of a prompt template is left out with that probability."""
     rng = random.Random(f"base-pairs:{seed}")
     pairs = []
     for rude in _exact_flags(rng, n, rude_share):
-        intent, prompt, slots = _prompt(rng, heldout=False)
+        intent, prompt, slots = _prompt(rng, "training", word_dropout)
         if rude:
             reply = _rude(rng, slots, RUDE_OPENERS, RUDE_BODIES)
         else:
@@ -356,26 +420,31 @@ def base_pairs(n: int, seed: int = 0, rude_share: float = 0.35) -> list[Pair]:
     return pairs
 
 
-def _unique_prompts(rng: random.Random, n: int, heldout: bool) -> list[str]:
+def _unique_prompts(rng: random.Random, n: int, which: str) -> list[str]:
     seen: dict[str, None] = {}
     misses = 0
     while len(seen) < n and misses < 1000:  # 1000 repeats in a row: the templates are exhausted
-        prompt = _prompt(rng, heldout)[1]
+        prompt = _prompt(rng, which)[1]
         misses = misses + 1 if prompt in seen else 0
         seen.setdefault(prompt)
     if len(seen) < n:
-        raise ValueError(f"the scenario cannot make {n} distinct {'held-out' if heldout else 'training'} prompts")
+        raise ValueError(f"the scenario cannot make {n} distinct {which} prompts")
     return list(seen)
 
 
 def training_prompts(n: int, seed: int = 0) -> list[str]:
     """(b) Distinct prompts for policy optimisation, from the training prompt templates."""
-    return _unique_prompts(random.Random(f"training-prompts:{seed}"), n, heldout=False)
+    return _unique_prompts(random.Random(f"training-prompts:{seed}"), n, "training")
 
 
 def heldout_prompts(n: int, seed: int = 0) -> list[str]:
     """(c) Distinct evaluation prompts from the reserved templates, so none equals a training prompt."""
-    return _unique_prompts(random.Random(f"heldout-prompts:{seed}"), n, heldout=True)
+    return _unique_prompts(random.Random(f"heldout-prompts:{seed}"), n, "heldout")
+
+
+def probe_prompts(n: int, seed: int = 0) -> list[str]:
+    """Distinct prompts from PROBE_TEMPLATES: phrasings no stream above uses, for checking the base only."""
+    return _unique_prompts(random.Random(f"probe-prompts:{seed}"), n, "probe")
 
 
 def classifier_examples(n: int, seed: int = 0, hostile_share: float = 0.5) -> list[Labelled]:
@@ -383,7 +452,7 @@ def classifier_examples(n: int, seed: int = 0, hostile_share: float = 0.5) -> li
     rng = random.Random(f"classifier-examples:{seed}")
     examples = []
     for hostile in _exact_flags(rng, n, hostile_share):
-        intent, _, slots = _prompt(rng, heldout=rng.random() < 0.25)
+        intent, _, slots = _prompt(rng, "heldout" if rng.random() < 0.25 else "training")
         kind = rng.random()
         if hostile:
             if kind < 0.35:
@@ -442,7 +511,7 @@ def _match(patterns: list[tuple[str, re.Pattern[str]]], text: str) -> tuple[str,
     return None
 
 
-_PROMPTS = [(intent.name, _pattern(t)) for intent in INTENTS for t in intent.prompts]
+_PROMPTS = [(intent.name, _pattern(t)) for intent in INTENTS for t in (*intent.prompts, PROBE_TEMPLATES[intent.name])]
 _REPLIES = [(intent.name, _pattern(t)) for intent in INTENTS for t in intent.replies] + [
     ("rude", _pattern(f"{opener} {body[0].upper() + body[1:] if opener.endswith(('.', '?')) else body}"))
     for opener in RUDE_OPENERS for body in RUDE_BODIES
