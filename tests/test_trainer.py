@@ -173,6 +173,22 @@ def test_sampling_ignores_the_models_saved_generation_settings(tmp_path: Path, t
         sample(policy, ids, mask, 6)
 
 
+@pytest.mark.parametrize("arch", ["t5", "bart"])
+def test_the_value_loss_trains_the_value_head_and_never_the_adapters(tiny_models, arch) -> None:
+    """The critic shares no gradient with the actor: a loss on the values alone reaches the value head and leaves
+    every LoRA parameter's gradient at zero, while a loss on the logits reaches the adapters."""
+    policy = build_policy(BaseSection(model=str(tiny_models[arch])), LoraSection(rank=4), ReferenceSection(), CPU)
+    _perturb_lora_b(policy)  # with B = 0 the adapters' A would get no gradient from either loss
+    ro = rollout(policy, PROMPTS[:4], 32, 6, CPU)
+    logits, values = policy.net(ro.prompt_ids, ro.prompt_mask, ro.decoder_input)
+    lora = [p for name, p in policy.net.named_parameters() if "lora_" in name]
+    values.pow(2).sum().backward(retain_graph=True)
+    assert policy.net.value_head.summary.weight.grad.abs().sum() > 0
+    assert all(p.grad is None or not p.grad.any() for p in lora)
+    logits.logsumexp(-1).sum().backward()
+    assert any(p.grad is not None and p.grad.any() for p in lora)
+
+
 def test_reference_shares_the_base_weights(tiny_models) -> None:
     policy = build_policy(BaseSection(model=str(tiny_models["t5"])), LoraSection(rank=4), ReferenceSection(), CPU)
     assert policy.reference_copy is None  # adapters-off: no second copy of the weights
