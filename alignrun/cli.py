@@ -51,7 +51,7 @@ def build_parser() -> argparse.ArgumentParser:
                        "from an invented service-desk scenario, then run preflight, training and evaluation.")
     p.add_argument("--out", help="run folder (default runs/demo)")
     p.add_argument("--overwrite", action="store_true", help="replace a run already in the run folder")
-    p.add_argument("--quick", action="store_true", help="fewer steps and prompts (the CI-sized demo)")
+    p.add_argument("--quick", action="store_true", help="fewer held-out prompts and samples (the CI-sized demo)")
     p.add_argument("--causal", action="store_true",
                    help="a decoder-only (Llama-shaped) base built from the same scenario (configs/causal-demo.toml)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")

@@ -169,9 +169,9 @@ def busy_seconds(cpus: list[int], stat: Path = Path("/proc/stat")) -> float | No
 
 
 class ThreadGovernor:
-    """Between steps, torch's thread count = the CPUs this process may use minus the CPUs other processes kept
-    busy since the last call (rounded, at least one), so OpenMP threads never spin waiting for a sibling that
-    another program holds off its CPU; with the machine to itself the process gets every CPU back.
+    """At step, minibatch and token boundaries (`rebalance`), torch's thread count = the CPUs this process may use
+    minus the CPUs other processes kept busy since the last call (rounded, at least one), so OpenMP threads never
+    spin waiting for a sibling that another program holds off its CPU; alone, the process gets every CPU back.
 
     Other processes' use = busy seconds of this process's CPUs (`busy_seconds`) minus this process's own CPU
     seconds, over the wall time between calls."""

@@ -3,7 +3,7 @@
     .venv/bin/python scripts/bench_methods.py [--seeds 0 1 2] [--every 2] [--out runs/bench-methods]
                                               [--results bench-results/bench-methods.json]
 
-Each method runs the quick demo (configs/demo.toml with alignrun.demo.run.QUICK) with the settings in METHODS; for
+Each method runs the quick demo (configs/demo.toml with alignrun.demo.run.QUICK, 32 steps) with the settings in METHODS; for
 each seed the methods run one after another, so the ratios to PPO of that seed share the machine's load.
 
 Held-out check (this script only, not alignrun's loop): before the first step and every --every steps, the bench
@@ -94,7 +94,7 @@ def run_one(method: str, seed: int, out: Path, every: int, extra: list[str]) -> 
     from alignrun.data import load_prompts
     from alignrun.demo.run import DEMO_CONFIG, QUICK
 
-    cfg = load_config(DEMO_CONFIG, [*QUICK, *METHODS[method], f"run.seed={seed}", *extra])
+    cfg = load_config(DEMO_CONFIG, [*QUICK, "ppo.steps=32", *METHODS[method], f"run.seed={seed}", *extra])
     split = load_prompts(cfg.data, cfg.run.seed, cfg.ppo.prompts_per_step)
     checks = Checks(trainer.train_step, split.heldout[: cfg.evaluation.max_prompts or None], every)
     trainer.train_step = checks  # type: ignore[assignment]

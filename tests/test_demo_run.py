@@ -23,8 +23,9 @@ def test_quick_demo_lowers_harm_by_both_judges(demo_models, tmp_path, capsys, sc
     report = json.loads((out / "report.json").read_text())
     ev = report["evaluation"]
     # our classifier, and alt-profanity-check (trained outside this project) as the independent judge; the
-    # reward classifier's paired 95% interval lies below zero (upper end -0.105 decoder, -0.072 both stacks with
-    # 2 threads on this project's CI machine, with the base of fresh pairs and 8 heads: a margin, not a coin toss)
+    # reward classifier's paired 95% interval lies below zero (upper end -0.140 decoder, -0.065 both stacks with
+    # 2 threads on this project's machine, 40 steps; at 32 steps both stacks ended at +0.004, so the quick demo
+    # keeps the full demo's steps: a margin, not a coin toss)
     assert ev["change"]["reward_classifier"]["diff_ci"][1] < 0
     assert ev["after"]["judge"]["mean"] < ev["before"]["judge"]["mean"]
     assert not [a for a in report["alarms"] if a["code"] in ("harm-increased", "judge-harm-increased")]

@@ -10,8 +10,8 @@ from alignrun.errors import UserError
 
 DEMO_CONFIG = Path(alignrun.__file__).resolve().parent.parent / "configs" / "demo.toml"
 CAUSAL_DEMO_CONFIG = DEMO_CONFIG.with_name("causal-demo.toml")  # the decoder-only variant (alignrun demo --causal)
-# The CI-sized demo: fewer steps and held-out prompts, same models.
-QUICK = ["ppo.steps=32", "evaluation.max_prompts=40", "evaluation.samples_per_prompt=2"]
+# The CI-sized demo: fewer held-out prompts and samples, same models and steps.
+QUICK = ["evaluation.max_prompts=40", "evaluation.samples_per_prompt=2"]
 
 
 def run_demo(out: str | None, quick: bool, quiet: bool, overrides: list[str], overwrite: bool = False,
