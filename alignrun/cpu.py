@@ -185,24 +185,21 @@ class ThreadGovernor:
         self.most, self.threads, self.apply = most, most, apply
         self.busy = busy or (lambda: busy_seconds(cpus))
         self.clock, self.own = clock, own
-        self.last = self._sample()
-
-    def _sample(self) -> tuple[float, float | None, float]:
-        return self.clock(), self.busy(), self.own()
+        self.last = (clock(), self.busy(), own())
 
     def others(self) -> float | None:
         """CPUs other processes used since the last call, while this process worked; None until enough time
         has passed, and for an interval in which this process hardly ran (its own pause says nothing about
         the competition its work meets)."""
-        wall = self.clock() - self.last[0]
+        now = self.clock()
+        wall = now - self.last[0]
         if wall < self.MIN_INTERVAL_S:  # cheap: called inside loops, it reads /proc/stat only now and then
             return None
-        now = self._sample()
-        wall, busy = now[0] - self.last[0], None if now[1] is None or self.last[1] is None else now[1] - self.last[1]
-        if busy is None:
+        busy_now, own_now = self.busy(), self.own()
+        if busy_now is None or self.last[1] is None:
             return None
-        own = now[2] - self.last[2]
-        self.last = now
+        busy, own = busy_now - self.last[1], own_now - self.last[2]
+        self.last = (now, busy_now, own_now)
         if own < self.MIN_OWN_SHARE * wall:  # this process hardly ran (paused, waiting on input): no evidence
             return None
         return max(0.0, busy - own) / wall
@@ -211,7 +208,7 @@ class ThreadGovernor:
         """Set and return the thread count for the next stretch of work."""
         others = self.others()
         if others is not None:
-            threads = max(1, min(self.most, self.most - math.floor(others + 0.5)))
+            threads = max(1, self.most - math.floor(others + 0.5))  # others >= 0: never above self.most
             if threads != self.threads:
                 self.apply(threads)
                 self.threads = threads

@@ -55,7 +55,7 @@ def worker(model: Path, setting: str) -> None:
     from alignrun import cpu
 
     if setting == "old":
-        torch.set_num_threads(len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1)
+        torch.set_num_threads(len(cpu.affinity_cpus()))
         reason = "the CPUs in the affinity mask (old default)"
     else:
         reason = common.set_bench_threads(0)  # as `alignrun run` does: for adaptive, with its ThreadGovernor

@@ -53,8 +53,10 @@ def answer_fit(pairs: list[dict]) -> tuple[float, float] | None:
     are not the scenario's (a demo run with other data)."""
     from alignrun.demo import scenario
 
+    def share(key: str) -> float:
+        return sum(scenario.reply_misfit(p["prompt"], p[key]) is None for p in pairs) / len(pairs)
+
     try:
-        return tuple(sum(scenario.reply_misfit(p["prompt"], p[key]) is None for p in pairs) / len(pairs)
-                     for key in ("before", "after"))  # type: ignore[return-value]
+        return share("before"), share("after")
     except ValueError:
         return None
