@@ -27,6 +27,7 @@ from transformers import (
 )
 
 from alignrun.config import cache_dir, load_config
+from alignrun.cpu import ThreadChoice
 from alignrun.demo import build, scenario
 from alignrun.demo.build import (
     CLASSIFIER_LABELS,
@@ -334,11 +335,13 @@ def cheap_trainers(monkeypatch: pytest.MonkeyPatch) -> Counter:
 
     def base(out: Path, tokenizer_dir: Path, recipe: build.BaseRecipe, seed: int, quiet: bool) -> dict[str, float]:
         calls["base"] += 1
+        calls[f"base on {torch.get_num_threads()} thread(s)"] += 1
         build_tiny_seq2seq(out, "t5", tokenizer_dir, seed)
         return {}
 
     def classifier(out: Path, recipe: build.ClassifierRecipe, seed: int, quiet: bool) -> dict[str, float]:
         calls["classifier"] += 1
+        calls[f"classifier on {torch.get_num_threads()} thread(s)"] += 1
         (out / "weights").write_text(str(seed))
         return {}
 
@@ -347,13 +350,18 @@ def cheap_trainers(monkeypatch: pytest.MonkeyPatch) -> Counter:
     return calls
 
 
+def _trainings(calls: Counter) -> dict[str, int]:
+    return {k: n for k, n in calls.items() if "thread" not in k}
+
+
 def test_build_demo_reuses_its_cache_and_rebuilds_what_changed(tmp_path: Path, cheap_trainers: Counter,
                                                                 monkeypatch: pytest.MonkeyPatch,
                                                                 capsys: pytest.CaptureFixture[str]):
-    threads = torch.get_num_threads()
+    monkeypatch.setattr(build, "choose_threads", lambda: ThreadChoice(4, "four CPUs", adaptive=True))
+    torch.set_num_threads(1)
     paths = build_demo(tmp_path, seed=0)
-    assert torch.get_num_threads() == threads  # thread count restored after the build
-    assert cheap_trainers == {"base": 1, "classifier": 1}
+    assert torch.get_num_threads() == 1  # thread count restored after the build
+    assert cheap_trainers == {"base": 1, "classifier": 1, "base on 2 thread(s)": 1, "classifier on 2 thread(s)": 1}
     # The base's fit and rude share are measured on the saved model, printed and kept in its stamp.
     assert "greedy replies that fit their prompt: held-out" in capsys.readouterr().err
     metrics = json.loads((paths.base / STAMP).read_text())["metrics"]
@@ -365,30 +373,36 @@ def test_build_demo_reuses_its_cache_and_rebuilds_what_changed(tmp_path: Path, c
     assert not {r["prompt"] for r in rows} & set(held)
 
     assert build_demo(tmp_path, seed=0) == paths
-    assert cheap_trainers == {"base": 1, "classifier": 1}
+    assert _trainings(cheap_trainers) == {"base": 1, "classifier": 1}
 
     # A changed classifier parameter rebuilds only the classifier.
     one_epoch = dataclasses.replace(build.ClassifierRecipe(), epochs=1)
     monkeypatch.setattr(build, "ClassifierRecipe", lambda: one_epoch)
     build_demo(tmp_path, seed=0)
-    assert cheap_trainers == {"base": 1, "classifier": 2}
+    assert _trainings(cheap_trainers) == {"base": 1, "classifier": 2}
 
     # A changed data parameter rewrites only the prompt files.
     fewer = dataclasses.replace(build.DataRecipe(), heldout_prompts=40)
     monkeypatch.setattr(build, "DataRecipe", lambda: fewer)
     build_demo(tmp_path, seed=0)
     assert len(paths.heldout.read_text().splitlines()) == 40
-    assert cheap_trainers == {"base": 1, "classifier": 2}
+    assert _trainings(cheap_trainers) == {"base": 1, "classifier": 2}
 
     # A stamp that does not match (e.g. written by an older builder) rebuilds that folder.
     stamp = paths.base / STAMP
     stamp.write_text(stamp.read_text().replace(read_fingerprint(paths.base), "0" * 64))
     build_demo(tmp_path, seed=0)
-    assert cheap_trainers == {"base": 2, "classifier": 2}
+    assert _trainings(cheap_trainers) == {"base": 2, "classifier": 2}
 
     # Another seed rebuilds everything.
     build_demo(tmp_path, seed=1)
-    assert cheap_trainers == {"base": 3, "classifier": 3}
+    assert _trainings(cheap_trainers) == {"base": 3, "classifier": 3}
+
+    # So does a machine where this process may use one CPU: the models depend on the build's thread count.
+    monkeypatch.setattr(build, "choose_threads", lambda: ThreadChoice(1, "one CPU", adaptive=True))
+    build_demo(tmp_path, seed=1)
+    assert _trainings(cheap_trainers) == {"base": 4, "classifier": 4}
+    assert cheap_trainers["base on 1 thread(s)"] == cheap_trainers["classifier on 1 thread(s)"] == 1
 
 
 def test_build_demo_defaults_to_the_alignrun_cache(tmp_path: Path, cheap_trainers: Counter,
@@ -447,7 +461,7 @@ def test_built_models_load_and_the_base_is_rude_about_as_often_as_its_data(built
     assert stamp["metrics"]["heldout_accuracy"] > 0.9
     # The fit rate in the base's stamp is the one its saved weights give (same machine, the build's settings).
     recorded = json.loads((built_demo.base / STAMP).read_text())["metrics"]
-    with build._torch_settings(threads=1):
+    with build._torch_settings(build.build_threads()):
         rate, _ = build.reply_fit(base, tok, scenario.heldout_prompts(build.FIT_PROMPTS, seed=0))
     assert rate == recorded["heldout_fit_rate"]
 

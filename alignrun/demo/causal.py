@@ -38,6 +38,7 @@ from alignrun.demo.build import (
     _log,
     _torch_settings,
     build_demo,
+    build_threads,
     fit,
     read_fingerprint,
 )
@@ -150,8 +151,10 @@ def build_causal_demo(cache: Path | None = None, seed: int = 0, quiet: bool = Fa
     paths = build_demo(cache, seed, quiet)
     recipe, pairs = CausalRecipe(), BaseRecipe()
     folder = paths.root / "causal-base"
-    with _torch_settings(threads=1):
-        _ensure("causal base model", folder, {"artefact": "causal-base", "seed": seed, **asdict(recipe),
+    threads = build_threads()
+    with _torch_settings(threads):
+        _ensure("causal base model", folder, {"artefact": "causal-base", "seed": seed, "threads": threads,
+                                              **asdict(recipe),
                                               "pairs": pairs.pairs, "rude_share": pairs.rude_share,
                                               "builder": hashlib.sha256(Path(__file__).read_bytes()).hexdigest(),
                                               "tokenizer": read_fingerprint(paths.tokenizer)},
