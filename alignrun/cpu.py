@@ -155,7 +155,8 @@ def claimed_share(shares: list[list[int]], key: str) -> Iterator[list[int] | Non
 
 def busy_seconds(cpus: list[int], stat: Path = Path("/proc/stat")) -> float | None:
     """CPU seconds the given CPUs spent busy since boot, by every process: user, nice, system, irq, softirq and
-    steal from /proc/stat's per-CPU lines, in USER_HZ ticks (proc(5)); None where there is no /proc/stat."""
+    steal from /proc/stat's per-CPU lines, in USER_HZ ticks (proc(5)); None where there is no /proc/stat or a line
+    is not in that layout. Fields an older kernel does not write count as zero."""
     text = _read(stat)
     if text is None:
         return None
@@ -163,7 +164,11 @@ def busy_seconds(cpus: list[int], stat: Path = Path("/proc/stat")) -> float | No
     for line in text.splitlines():
         fields = line.split()
         if fields and fields[0] in wanted:
-            user, nice, system, _idle, _iowait, irq, softirq, steal = (int(f) for f in fields[1:9])
+            try:
+                values = [int(f) for f in fields[1:9]]
+            except ValueError:
+                return None
+            user, nice, system, _idle, _iowait, irq, softirq, steal = values + [0] * (8 - len(values))
             ticks += user + nice + system + irq + softirq + steal
     return ticks / os.sysconf("SC_CLK_TCK")
 

@@ -159,6 +159,12 @@ def test_busy_seconds_reads_the_given_cpus_lines(tmp_path: Path) -> None:
     assert cpu.busy_seconds([1], stat) == pytest.approx((500 + 5 + 200 + 3 + 2 + 10) / hz)
     assert cpu.busy_seconds([0, 1], stat) == pytest.approx((520 + 720) / hz)
     assert cpu.busy_seconds([0], tmp_path / "absent") is None
+    # Kernels before 2.6.11 wrote no steal field, before 2.6.0 no irq/softirq (proc(5), from memory): zero, no crash.
+    stat.write_text("cpu  10 0 10 100\ncpu0 400 5 100 1000 50 2 3\ncpu1 500 5 200 900\n")
+    assert cpu.busy_seconds([0], stat) == pytest.approx((400 + 5 + 100 + 2 + 3) / hz)
+    assert cpu.busy_seconds([1], stat) == pytest.approx((500 + 5 + 200) / hz)
+    stat.write_text("cpu0 400 5 n/a 1000\n")  # not proc(5)'s layout: no reading, so the thread count stays
+    assert cpu.busy_seconds([0], stat) is None
 
 
 class FakeMachine:
