@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import dataclasses
 import json
+import re
 import sys
 from collections import Counter
 from pathlib import Path
@@ -82,9 +83,26 @@ def test_heldout_prompts_are_distinct_and_never_training_prompts(seed: int):
     supervised = {p.prompt for p in scenario.base_pairs(6000, seed)}
     dropped = {p.prompt for p in scenario.base_pairs(6000, seed, word_dropout=BaseRecipe().word_dropout)}
     assert len(dropped - supervised) > 1000  # word dropout writes prompts the templates alone do not
+    joined = {p.prompt for p in scenario.base_pairs(6000, seed, word_dropout=BaseRecipe().word_dropout,
+                                                   sentence_join=BaseRecipe().sentence_join)}
+    assert len(joined - supervised - dropped) > 1000
     for other_seed in (seed, seed + 1):
         unseen = set(scenario.heldout_prompts(80, other_seed)) | set(scenario.probe_prompts(80, other_seed))
-        assert not unseen & (train | supervised | dropped)
+        assert not unseen & (train | supervised | dropped | joined)
+
+
+def test_a_joined_sentence_comes_from_another_phrasing_of_the_same_question():
+    sentences = [(intent.name, scenario._pattern(sentence)) for intent in scenario.INTENTS
+                 for template in intent.prompts[:-1] for sentence in scenario._sentences(template)]
+    for pair in scenario.base_pairs(300, seed=4, sentence_join=1.0):
+        found = []
+        for cut in re.finditer(r"(?<=[.?;]) ", pair.prompt):
+            halves = (pair.prompt[: cut.start()], pair.prompt[cut.end() :])
+            for whole, part in (halves, halves[::-1]):
+                asked = scenario._match(scenario._PROMPTS, whole)
+                if asked and scenario._match([s for s in sentences if s[0] == asked[0]], part):
+                    found.append(whole)
+        assert found, f"not a training phrasing plus a sentence of the same question: {pair.prompt!r}"
 
 
 def test_too_many_distinct_prompts_is_refused():

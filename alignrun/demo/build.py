@@ -68,11 +68,14 @@ class BaseRecipe:
     that fit their prompt, 200 prompts): 6000 pairs seen five times at learning rate 1e-2 with 4 heads of 32
     fitted 7% of held-out prompts and 12% of training ones; 3e-3 ended at a lower loss; 8 heads of 16 instead of
     4 of 32 fitted 99% instead of 76% of training prompts after 1000 steps; the weight average added about ten
-    points on held-out prompts part-way through training.
+    points on held-out prompts part-way through training; a sentence of another phrasing joined to half the
+    prompts raised held-out fit from 83% to 92% on average over seeds 0-3 (one thread; training 88% to 95%, probe
+    68% to 75%), with more spread between seeds than between recipes for most other changes tried.
     """
 
     pairs: int = 25600
     rude_share: float = 0.35
+    sentence_join: float = 0.5  # share of prompts given one sentence of another phrasing of the same question
     word_dropout: float = 0.15  # each literal word of a prompt template left out with this probability
     vocab_size: int = 1200
     d_model: int = 128
@@ -217,7 +220,7 @@ def _batches(lengths: Sequence[int], size: int, rng: random.Random, window: int 
 def train_base(out: Path, tokenizer_dir: Path, recipe: BaseRecipe, seed: int, quiet: bool = False) -> dict[str, float]:
     """Teacher-forced training of a small T5 on scenario pairs (a); saves model, tokenizer, generation config."""
     tokenizer = AutoTokenizer.from_pretrained(tokenizer_dir)
-    pairs = scenario.base_pairs(recipe.pairs, seed, recipe.rude_share, recipe.word_dropout)
+    pairs = scenario.base_pairs(recipe.pairs, seed, recipe.rude_share, recipe.word_dropout, recipe.sentence_join)
     enc = tokenizer([p.prompt for p in pairs], padding=True, return_tensors="pt")
     labels = tokenizer([p.reply for p in pairs], padding=True, return_tensors="pt").input_ids
     labels[labels == PAD_ID] = -100  # no loss on padding
@@ -493,7 +496,7 @@ def build_demo(cache: Path | None = None, seed: int = 0, quiet: bool = False) ->
     start, cpu = time.perf_counter(), time.process_time()
 
     def make_tokenizer(tmp: Path) -> dict[str, float]:
-        pairs = scenario.base_pairs(base.pairs, seed, base.rude_share, base.word_dropout)
+        pairs = scenario.base_pairs(base.pairs, seed, base.rude_share, base.word_dropout, base.sentence_join)
         build_tokenizer([p.prompt for p in pairs] + [p.reply for p in pairs], tmp, base.vocab_size)
         return {}
 
@@ -501,7 +504,8 @@ def build_demo(cache: Path | None = None, seed: int = 0, quiet: bool = False) ->
     with _torch_settings(threads):
         _ensure("tokenizer", paths.tokenizer, {"artefact": "tokenizer", "seed": seed, "pairs": base.pairs,
                                                "rude_share": base.rude_share, "vocab_size": base.vocab_size,
-                                               "word_dropout": base.word_dropout},
+                                               "word_dropout": base.word_dropout,
+                                               "sentence_join": base.sentence_join},
                 make_tokenizer)
         _ensure("prompt files", paths.prompts.parent, {"artefact": "data", "seed": seed, **asdict(data)},
                 lambda tmp: write_prompts(tmp, data, seed))

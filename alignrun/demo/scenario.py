@@ -377,8 +377,15 @@ def _drop_words(rng: random.Random, template: str, share: float) -> str:
     return " ".join(kept) if len(kept) >= 3 else template
 
 
-def _prompt(rng: random.Random, which: str = "training", drop: float = 0.0) -> tuple[Intent, str, dict[str, str]]:
-    """A prompt of a random intent from its training templates, its reserved held-out template, or its probe."""
+def _sentences(template: str) -> list[str]:
+    return [s for s in re.split(r"(?<=[.?;]) ", template) if s]
+
+
+def _prompt(rng: random.Random, which: str = "training", drop: float = 0.0,
+            join: float = 0.0) -> tuple[Intent, str, dict[str, str]]:
+    """A prompt of a random intent from its training templates, its reserved held-out template, or its probe; with
+    probability `join`, one sentence of another training template of the same intent goes before or after it, so
+    that the base meets a question's cues in more combinations and places than the templates alone give."""
     intent = rng.choice(INTENTS)
     if which == "heldout":
         template = intent.prompts[-1]
@@ -386,6 +393,9 @@ def _prompt(rng: random.Random, which: str = "training", drop: float = 0.0) -> t
         template = PROBE_TEMPLATES[intent.name]
     else:
         template = rng.choice(intent.prompts[:-1])
+    if join and rng.random() < join:
+        extra = rng.choice(_sentences(rng.choice(intent.prompts[:-1])))
+        template = f"{extra} {template}" if rng.random() < 0.5 else f"{template} {extra}"
     if drop:
         template = _drop_words(rng, template, drop)
     slots = _slots(rng)
@@ -405,13 +415,15 @@ def _exact_flags(rng: random.Random, n: int, share: float) -> list[bool]:
     return flags
 
 
-def base_pairs(n: int, seed: int = 0, rude_share: float = 0.35, word_dropout: float = 0.0) -> list[Pair]:
-    """(a) Supervised prompt/reply pairs: exactly round(rude_share * n) replies are rude; with word_dropout, each
-    literal word of a prompt template is left out with that probability."""
+def base_pairs(n: int, seed: int = 0, rude_share: float = 0.35, word_dropout: float = 0.0,
+               sentence_join: float = 0.0) -> list[Pair]:
+    """(a) Supervised prompt/reply pairs: exactly round(rude_share * n) replies are rude; with sentence_join, that
+    share of prompts gains a sentence of another phrasing of the same question; with word_dropout, each literal
+    word of a prompt template is then left out with that probability."""
     rng = random.Random(f"base-pairs:{seed}")
     pairs = []
     for rude in _exact_flags(rng, n, rude_share):
-        intent, prompt, slots = _prompt(rng, "training", word_dropout)
+        intent, prompt, slots = _prompt(rng, "training", word_dropout, sentence_join)
         if rude:
             reply = _rude(rng, slots, RUDE_OPENERS, RUDE_BODIES)
         else:
