@@ -6,6 +6,7 @@ import json
 from pathlib import Path
 
 import alignrun
+from alignrun.demo import scenario
 from alignrun.errors import UserError
 
 DEMO_CONFIG = Path(alignrun.__file__).resolve().parent.parent / "configs" / "demo.toml"
@@ -51,7 +52,6 @@ def answer_fit(pairs: list[dict]) -> tuple[float, float] | None:
     """Shares of greedy replies before and after training that fit their prompt (scenario.reply_misfit: the
     right reply family with the prompt's details copied; rude replies count as fitting); None when the prompts
     are not the scenario's (a demo run with other data)."""
-    from alignrun.demo import scenario
 
     def share(key: str) -> float:
         return sum(scenario.reply_misfit(p["prompt"], p[key]) is None for p in pairs) / len(pairs)

@@ -18,6 +18,7 @@ import random
 import re
 import string
 from dataclasses import dataclass
+from typing import Literal
 
 ORGANISATION = "Brindlemere Spoke & Scooter Co-op"
 
@@ -381,7 +382,10 @@ def _sentences(template: str) -> list[str]:
     return [s for s in re.split(r"(?<=[.?;]) ", template) if s]
 
 
-def _prompt(rng: random.Random, which: str = "training", drop: float = 0.0,
+Stream = Literal["training", "heldout", "probe"]
+
+
+def _prompt(rng: random.Random, which: Stream = "training", drop: float = 0.0,
             join: float = 0.0) -> tuple[Intent, str, dict[str, str]]:
     """A prompt of a random intent from its training templates, its reserved held-out template, or its probe; with
     probability `join`, one sentence of another training template of the same intent goes before or after it, so
@@ -432,7 +436,7 @@ def base_pairs(n: int, seed: int = 0, rude_share: float = 0.35, word_dropout: fl
     return pairs
 
 
-def _unique_prompts(rng: random.Random, n: int, which: str) -> list[str]:
+def _unique_prompts(rng: random.Random, n: int, which: Stream) -> list[str]:
     seen: dict[str, None] = {}
     misses = 0
     while len(seen) < n and misses < 1000:  # 1000 repeats in a row: the templates are exhausted
